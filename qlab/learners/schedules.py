@@ -1,0 +1,48 @@
+"""Schedules for exploration rates and step sizes, as pure functions of a count.
+
+* ``constant``: ``start`` forever.
+* ``linear``: from ``start`` to ``end`` over ``horizon`` counts, then ``end``.
+* ``exponential``: ``end + (start - end) * exp(-n / horizon)``.
+* ``polynomial``: ``start / (n + 1) ** power`` (power 1 gives the 1/n harmonic steps; with the
+  visit count of a state-action pair as ``n`` this is the classic 1/visit-count step size).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+SCHEDULE_KINDS = ("constant", "linear", "exponential", "polynomial")
+
+
+@dataclass(frozen=True)
+class Schedule:
+    """A rate as a function of a count ``n`` (steps, episodes or visits); vectorised over ``n``."""
+
+    kind: str = "constant"
+    start: float = 0.1
+    end: float = 0.0
+    horizon: float = 1.0
+    power: float = 1.0
+
+    def __post_init__(self) -> None:
+        if self.kind not in SCHEDULE_KINDS:
+            raise ValueError(f"schedule kind must be one of {list(SCHEDULE_KINDS)}, got {self.kind!r}")
+        if self.horizon <= 0:
+            raise ValueError(f"schedule horizon must be > 0, got {self.horizon!r}")
+        if self.kind == "polynomial" and not 0.5 < self.power <= 1.0:
+            raise ValueError(f"polynomial schedule power must lie in (0.5, 1], got {self.power!r}")
+
+    def __call__(self, n: np.ndarray | int) -> np.ndarray | float:
+        n = np.asarray(n, dtype=np.float64)
+        if self.kind == "constant":
+            out = np.full_like(n, self.start)
+        elif self.kind == "linear":
+            frac = np.clip(n / self.horizon, 0.0, 1.0)
+            out = self.start + frac * (self.end - self.start)
+        elif self.kind == "exponential":
+            out = self.end + (self.start - self.end) * np.exp(-n / self.horizon)
+        else:
+            out = self.start / (n + 1.0) ** self.power
+        return float(out) if out.ndim == 0 else out

@@ -1,0 +1,172 @@
+"""Common skeleton of qlab's control tasks: physics written once, batched, in numpy.
+
+Every task subclasses :class:`ControlTask` and writes its dynamics a single time, in
+:meth:`ControlTask.batch_step`, for ``N`` copies of the plant at once. The gymnasium
+``reset``/``step`` pair of a single environment is the ``N = 1`` case of the same code, and
+:class:`qlab.tasks.batch.TaskBatch` steps many copies together.
+
+Actions reach the physics as a physical control array of shape ``(N, control_dim)``: a
+discrete action index is mapped to one of ``n_levels`` evenly spaced control levels, a
+continuous action is clipped to the control bounds (unless the bounds are switched off).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any, ClassVar
+
+import gymnasium as gym
+import numpy as np
+from gymnasium import spaces
+
+ACTION_KINDS = ("discrete", "continuous")
+
+
+@dataclass(frozen=True)
+class StepOutcome:
+    """Result of one batched physics step for ``N`` copies."""
+
+    next_state: np.ndarray  # (N, state_dim) float64
+    base_reward: np.ndarray  # (N,) float64, the task's own reward
+    terminated: np.ndarray  # (N,) bool, success or failure (or the end of a batch)
+    success: np.ndarray  # (N,) bool
+
+
+def require_positive(name: str, value: float) -> float:
+    """Return ``value`` if it is a finite positive number, else raise ``ValueError`` naming it."""
+    if not np.isfinite(value) or value <= 0:
+        raise ValueError(f"{name} must be a finite number > 0, got {value!r}")
+    return float(value)
+
+
+def require_choice(name: str, value: str, choices: tuple[str, ...]) -> str:
+    """Return ``value`` if it is one of ``choices``, else raise ``ValueError`` listing them."""
+    if value not in choices:
+        raise ValueError(f"{name} must be one of {list(choices)}, got {value!r}")
+    return value
+
+
+def require_range(name: str, value: tuple[float, float], low: float = -np.inf) -> tuple[float, float]:
+    """Return ``(lo, hi)`` with ``low <= lo <= hi``, else raise ``ValueError`` naming it."""
+    lo, hi = (float(v) for v in value)
+    if not (np.isfinite(lo) and np.isfinite(hi) and low <= lo <= hi):
+        raise ValueError(f"{name} must be a finite (low, high) pair with {low} <= low <= high, got {value!r}")
+    return lo, hi
+
+
+class ControlTask(gym.Env):
+    """Base class: subclasses define the physics, the observation and the shaping signals.
+
+    Subclasses must set ``self.observation_space``, call :meth:`_setup_actions` and
+    :meth:`_setup_time_cap` in ``__init__``, and implement :meth:`sample_start`,
+    :meth:`batch_step`, :meth:`observe`, :meth:`potential` and :meth:`goal_distance`.
+    """
+
+    metadata: ClassVar[dict[str, Any]] = {"render_modes": []}
+    #: Shaping variants that make sense for this task (see :mod:`qlab.shaping`).
+    shaping_variants: ClassVar[tuple[str, ...]] = ("none", "potential", "progress")
+    #: Default weight k of the ``progress`` bonus, per unit of goal distance.
+    default_progress_scale: ClassVar[float] = 0.01
+
+    control_levels: np.ndarray | None
+    control_low: np.ndarray
+    control_high: np.ndarray
+    max_steps: int
+
+    # --- set-up helpers -------------------------------------------------------------------
+
+    def _setup_actions(
+        self,
+        control_low: np.ndarray | float,
+        control_high: np.ndarray | float,
+        action_kind: str,
+        n_levels: int,
+        clip: bool = True,
+    ) -> None:
+        """Build the action space: ``n_levels`` evenly spaced levels or a continuous box."""
+        require_choice("action_kind", action_kind, ACTION_KINDS)
+        self.control_low = np.atleast_1d(np.asarray(control_low, dtype=np.float64))
+        self.control_high = np.atleast_1d(np.asarray(control_high, dtype=np.float64))
+        self.action_kind = action_kind
+        self.clip_controls = clip
+        if action_kind == "discrete":
+            if int(n_levels) != n_levels or n_levels < 2:
+                raise ValueError(f"n_levels must be an integer >= 2, got {n_levels!r}")
+            if not (np.all(np.isfinite(self.control_low)) and np.all(np.isfinite(self.control_high))):
+                raise ValueError("discrete actions need finite control bounds")
+            frac = np.linspace(0.0, 1.0, int(n_levels))[:, None]
+            self.control_levels = self.control_low + frac * (self.control_high - self.control_low)
+            self.action_space = spaces.Discrete(int(n_levels))
+        else:
+            self.control_levels = None
+            low = self.control_low if clip else np.full_like(self.control_low, -np.inf)
+            high = self.control_high if clip else np.full_like(self.control_high, np.inf)
+            self.action_space = spaces.Box(low.astype(np.float32), high.astype(np.float32), dtype=np.float32)
+
+    def _setup_time_cap(self, max_steps: int) -> None:
+        if int(max_steps) != max_steps or max_steps < 1:
+            raise ValueError(f"max_steps must be an integer >= 1, got {max_steps!r}")
+        self.max_steps = int(max_steps)
+        self._state: np.ndarray | None = None
+        self._elapsed = 0
+
+    # --- what subclasses write once -------------------------------------------------------
+
+    def sample_start(self, n: int, rng: np.random.Generator) -> np.ndarray:
+        """Draw ``n`` start states, shape ``(n, state_dim)``."""
+        raise NotImplementedError
+
+    def batch_step(self, state: np.ndarray, control: np.ndarray, rng: np.random.Generator) -> StepOutcome:
+        """Advance ``N`` copies one step under physical controls of shape ``(N, control_dim)``."""
+        raise NotImplementedError
+
+    def observe(self, state: np.ndarray) -> np.ndarray:
+        """Observation of each copy, shape ``(N, obs_dim)``, dtype of the observation space."""
+        raise NotImplementedError
+
+    def potential(self, obs: np.ndarray) -> np.ndarray:
+        """Value-like potential Phi(obs) in [0, 1], highest at the goal, shape ``(N,)``."""
+        raise NotImplementedError
+
+    def goal_distance(self, obs: np.ndarray) -> np.ndarray:
+        """Non-negative distance to the goal used by the ``progress`` bonus, shape ``(N,)``."""
+        raise NotImplementedError
+
+    # --- shared machinery -----------------------------------------------------------------
+
+    def controls(self, action: np.ndarray) -> np.ndarray:
+        """Map a batch of actions (indices or continuous vectors) to physical controls (N, control_dim)."""
+        if self.control_levels is not None:
+            return self.control_levels[np.asarray(action, dtype=np.int64).reshape(-1)]
+        u = np.asarray(action, dtype=np.float64).reshape(-1, self.control_low.size)
+        return np.clip(u, self.control_low, self.control_high) if self.clip_controls else u
+
+    def reset(self, *, seed: int | None = None, options: dict[str, Any] | None = None):
+        super().reset(seed=seed)
+        self._state = self.sample_start(1, self.np_random)
+        self._elapsed = 0
+        return self.observe(self._state)[0], {}
+
+    def step(self, action):
+        if self._state is None:
+            raise RuntimeError("call reset() before step()")
+        out = self.batch_step(self._state, self.controls(np.asarray(action)[None]), self.np_random)
+        self._state = out.next_state
+        self._elapsed += 1
+        terminated = bool(out.terminated[0])
+        truncated = (not terminated) and self._elapsed >= self.max_steps
+        info = {"success": bool(out.success[0]), "base_reward": float(out.base_reward[0])}
+        return self.observe(self._state)[0], float(out.base_reward[0]), terminated, truncated, info
+
+    @property
+    def state(self) -> np.ndarray:
+        """The current internal state of the single environment (a copy), shape ``(state_dim,)``."""
+        if self._state is None:
+            raise RuntimeError("call reset() first")
+        return self._state[0].copy()
+
+    def set_state(self, state: np.ndarray, elapsed: int = 0) -> np.ndarray:
+        """Place the single environment in ``state`` (for tests and diagnostics); returns its observation."""
+        self._state = np.asarray(state, dtype=np.float64).reshape(1, -1).copy()
+        self._elapsed = int(elapsed)
+        return self.observe(self._state)[0]
