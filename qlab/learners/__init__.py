@@ -1,0 +1,51 @@
+"""Learners behind one protocol (:mod:`qlab.learners.protocol`), looked up by name.
+
+Each entry maps a config-group name to ``module:LearnerClass`` and ``module:ConfigClass``;
+every learner is built as ``LearnerClass(observation_space, action_space, config, seed)``.
+"""
+
+from __future__ import annotations
+
+import importlib
+from typing import Any
+
+import gymnasium as gym
+
+from qlab.learners.protocol import Learner, Transitions
+
+LEARNERS: dict[str, tuple[str, str]] = {
+    "tabular": ("qlab.learners.tabular:TabularQ", "qlab.learners.tabular:TabularConfig"),
+    "linear": ("qlab.learners.linear:LinearQ", "qlab.learners.linear:LinearConfig"),
+    "lstdq": ("qlab.learners.lstdq:LSTDQ", "qlab.learners.lstdq:LSTDQConfig"),
+    "qnet": ("qlab.learners.qnet:QNetLearner", "qlab.learners.qnet:QNetConfig"),
+}
+
+
+def _load(target: str) -> Any:
+    module, attr = target.split(":")
+    return getattr(importlib.import_module(module), attr)
+
+
+def _entry(kind: str) -> tuple[str, str]:
+    if kind not in LEARNERS:
+        raise ValueError(f"learner must be one of {sorted(LEARNERS)}, got {kind!r}")
+    return LEARNERS[kind]
+
+
+def learner_config_class(kind: str) -> type:
+    """The config dataclass of learner ``kind``."""
+    return _load(_entry(kind)[1])
+
+
+def build_learner(
+    kind: str, settings: dict[str, Any], observation_space: gym.Space, action_space: gym.Space, seed: int
+) -> Learner:
+    """Construct learner ``kind`` from a plain dict of its config fields."""
+    from omegaconf import OmegaConf
+
+    cls, config_cls = (_load(t) for t in _entry(kind))
+    config = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(config_cls), settings))
+    return cls(observation_space, action_space, config, seed)
+
+
+__all__ = ["LEARNERS", "Learner", "Transitions", "build_learner", "learner_config_class"]

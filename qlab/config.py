@@ -1,0 +1,163 @@
+"""Structured configs (dataclasses) behind the hydra app, so a typo fails before any work.
+
+Schemas are registered with hydra's ConfigStore as ``<group>/schema_<name>``; the YAML files
+in ``configs/<group>/<name>.yaml`` extend them. Task and learner schemas are derived from the
+task constructors and the learners' own config dataclasses, so there is a single source of
+truth for every setting.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import importlib
+import inspect
+import types
+import typing
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Any, Optional
+
+from hydra.core.config_store import ConfigStore
+from omegaconf import MISSING, DictConfig, OmegaConf
+
+from qlab.learners import LEARNERS, learner_config_class
+from qlab.shaping import SHAPING_VARIANTS
+
+CONFIG_DIR = Path(__file__).resolve().parent.parent / "configs"
+
+#: config-group option -> (gymnasium id, "module:Class" of the constructor whose arguments are the settings)
+TASKS = {
+    "dock": ("qlab/Dock-v0", "qlab.tasks.dock:Dock"),
+    "kiln": ("qlab/Kiln-v0", "qlab.tasks.kiln:Kiln"),
+    "crane": ("qlab/Crane-v0", "qlab.tasks.crane:Crane"),
+    "linear_quadratic": ("qlab/LinearQuadratic-v0", "qlab.tasks.linear_quadratic:LinearQuadratic"),
+}
+
+
+@dataclass
+class ShapingConfig:
+    """Which shaping variant trains the learner; evaluation always uses the task's own reward."""
+
+    variant: str = "none"
+    progress_scale: Optional[float] = None  # noqa: UP045 (omegaconf needs typing.Optional)
+
+
+@dataclass
+class EvaluationConfig:
+    """Greedy evaluation on the task's own reward from a fixed seeded set of start states."""
+
+    every_steps: int = 5_000
+    episodes: int = 20
+    start_seed: int = 1_000_000  # start states use seeds start_seed .. start_seed + episodes - 1
+
+
+@dataclass
+class GymTaskConfig:
+    """Any registered gymnasium id; ``params`` go to ``gymnasium.make``."""
+
+    id: str = "CartPole-v1"
+    params: dict[str, Any] = field(default_factory=dict)
+
+
+@dataclass
+class RunConfig:
+    """One run: a task, a shaping variant and a learner, trained for a step budget."""
+
+    task: Any = MISSING
+    learner: Any = MISSING
+    shaping: ShapingConfig = field(default_factory=ShapingConfig)
+    evaluation: EvaluationConfig = field(default_factory=EvaluationConfig)
+    seed: int = 0
+    gamma: float = 0.99
+    budget_steps: int = 50_000
+    checkpoint_every_episodes: int = 25
+    study_name: str = "scratch"
+    results_dir: str = "results"
+    torch_threads: int = 1
+    tensorboard: bool = True
+
+
+def _field_type(annotation: Any) -> Any:
+    """Map a constructor annotation to one omegaconf can check (anything else: ``Any``)."""
+    if annotation in (int, float, str, bool):
+        return annotation
+    args = typing.get_args(annotation)
+    if isinstance(annotation, types.UnionType | type(Optional[int])) and type(None) in args:  # noqa: UP045
+        rest = [a for a in args if a is not type(None)]
+        if len(rest) == 1 and rest[0] in (int, float, str, bool):
+            return Optional[rest[0]]  # noqa: UP045
+    return Any
+
+
+def _plain(value: Any) -> Any:
+    """Defaults as omegaconf-friendly values (tuples and arrays become lists)."""
+    if hasattr(value, "tolist"):
+        return value.tolist()
+    if isinstance(value, tuple | list):
+        return [_plain(v) for v in value]
+    return value
+
+
+def signature_schema(name: str, target: str, head: list[tuple[str, Any, Any]]) -> type:
+    """A dataclass whose fields are ``head`` followed by the keyword arguments of ``target``."""
+    module, attr = target.split(":")
+    cls = getattr(importlib.import_module(module), attr)
+    hints = typing.get_type_hints(cls.__init__)
+    fields: list[tuple[str, Any, Any]] = list(head)
+    for p in inspect.signature(cls.__init__).parameters.values():
+        if p.name == "self" or p.kind in (p.VAR_POSITIONAL, p.VAR_KEYWORD):
+            continue
+        default = _plain(p.default) if p.default is not p.empty else MISSING
+        kind = _field_type(hints.get(p.name, Any))
+        spec = field(default_factory=lambda d=default: list(d)) if isinstance(default, list) else field(default=default)
+        fields.append((p.name, kind, spec))
+    return dataclasses.make_dataclass(name, fields)
+
+
+def learner_schema(kind: str) -> type:
+    """The learner's own config dataclass, headed by a ``kind`` field naming the learner."""
+    base = learner_config_class(kind)
+    hints = typing.get_type_hints(base)
+    fields: list[tuple[str, Any, Any]] = [("kind", str, field(default=kind))]
+    for f in dataclasses.fields(base):
+        spec = field(default=f.default) if f.default_factory is dataclasses.MISSING else field(
+            default_factory=f.default_factory
+        )
+        fields.append((f.name, hints[f.name], spec))
+    return dataclasses.make_dataclass(f"{base.__name__}Node", fields)
+
+
+def register_configs() -> ConfigStore:
+    """Register every schema with hydra's ConfigStore (idempotent)."""
+    cs = ConfigStore.instance()
+    cs.store(name="schema_run", node=RunConfig)
+    for option, (env_id, target) in TASKS.items():
+        head = [("id", str, field(default=env_id))]
+        cs.store(group="task", name=f"schema_{option}", node=signature_schema(f"{option}_task", target, head))
+    cs.store(group="task", name="schema_gym", node=GymTaskConfig)
+    for kind in LEARNERS:
+        cs.store(group="learner", name=f"schema_{kind}", node=learner_schema(kind))
+    return cs
+
+
+def validate(cfg: DictConfig) -> None:
+    """Checks a schema cannot express; a ``ValueError`` names the key and what is allowed."""
+    positive = {
+        "budget_steps": cfg.budget_steps,
+        "evaluation.every_steps": cfg.evaluation.every_steps,
+        "evaluation.episodes": cfg.evaluation.episodes,
+        "checkpoint_every_episodes": cfg.checkpoint_every_episodes,
+        "torch_threads": cfg.torch_threads,
+    }
+    for key, value in positive.items():
+        if value <= 0:
+            raise ValueError(f"{key} must be a positive integer, got {value}")
+    if not 0.0 <= cfg.gamma <= 1.0:
+        raise ValueError(f"gamma must lie in [0, 1], got {cfg.gamma}")
+    if cfg.shaping.variant not in SHAPING_VARIANTS:
+        raise ValueError(f"shaping.variant must be one of {list(SHAPING_VARIANTS)}, got {cfg.shaping.variant!r}")
+
+
+def to_container(cfg: DictConfig) -> dict[str, Any]:
+    """Resolved plain-dict copy of a config."""
+    return OmegaConf.to_container(cfg, resolve=True)  # type: ignore[return-value]

@@ -1,0 +1,261 @@
+"""One run: build task, shaping and learner from a config, train, evaluate, record, checkpoint.
+
+The loop treats every learner alike (the protocol in :mod:`qlab.learners.protocol`). Training
+episodes reset from seeds derived from the run seed and the episode index, and checkpoints are
+taken at episode boundaries, so a resumed run repeats the uninterrupted run exactly.
+"""
+
+from __future__ import annotations
+
+import dataclasses
+import hashlib
+import json
+import shutil
+import sys
+import time
+from collections import defaultdict
+from dataclasses import dataclass
+from pathlib import Path
+from typing import Any
+
+import gymnasium as gym
+import numpy as np
+from omegaconf import DictConfig, OmegaConf
+
+from qlab.checkpoint import load_checkpoint, save_checkpoint
+from qlab.config import to_container, validate
+from qlab.learners import Learner, Transitions, build_learner
+from qlab.recording import MARKER, SUMMARY, Recorder, atomic_write_json, atomic_write_text
+from qlab.shaping import ShapedReward
+
+CHECKPOINT = "checkpoint"
+
+
+@dataclass
+class LoopState:
+    """Position of the training loop, saved with every checkpoint."""
+
+    step: int = 0
+    episode: int = 0
+    next_eval: int = 0
+    last_eval: int = -1
+
+
+def config_hash(cfg: DictConfig) -> str:
+    """Short hash of the resolved config (decides whether a finished run may be skipped)."""
+    return hashlib.sha256(OmegaConf.to_yaml(cfg, resolve=True).encode()).hexdigest()[:16]
+
+
+def episode_seed(run_seed: int, episode: int) -> int:
+    """Reset seed of a training episode: a function of the run seed and the episode index only."""
+    return int(np.random.SeedSequence([run_seed, episode]).generate_state(1)[0])
+
+
+def make_env(task: DictConfig, shaping_variant: str, gamma: float, progress_scale: float | None) -> gym.Env:
+    """The task from its config, wrapped in a shaping variant unless ``none``."""
+    params = to_container(task)
+    env_id = params.pop("id")
+    params = params.pop("params", params)
+    env = gym.make(env_id, **params)
+    if shaping_variant != "none":
+        env = ShapedReward(env, shaping_variant, gamma, progress_scale)
+    return env
+
+
+def evaluate(learner: Learner, env: gym.Env, start_seeds: list[int], gamma: float) -> dict[str, float]:
+    """Greedy episodes on the task's own reward from fixed seeded start states."""
+    success, disc, undisc, length, q_start = [], [], [], [], []
+    for s in start_seeds:
+        obs, _ = env.reset(seed=s)
+        q_start.append(float(learner.value(np.asarray(obs, dtype=np.float32)[None])[0]))
+        done, t, g, total, ok = False, 0, 0.0, 0.0, False
+        while not done:
+            action = learner.greedy(np.asarray(obs, dtype=np.float32)[None])[0]
+            obs, reward, terminated, truncated, info = env.step(action)
+            base = float(info.get("base_reward", reward))
+            g += gamma**t * base
+            total += base
+            ok = bool(info.get("success", False))
+            t += 1
+            done = terminated or truncated
+        success.append(ok)
+        disc.append(g)
+        undisc.append(total)
+        length.append(t)
+    return {
+        "success_rate": float(np.mean(success)),
+        "discounted_return": float(np.mean(disc)),
+        "return": float(np.mean(undisc)),
+        "length": float(np.mean(length)),
+        "q_start": float(np.mean(q_start)),
+    }
+
+
+class Progress:
+    """A one-line progress bar for a single run, or a single closing line per run in a sweep."""
+
+    def __init__(self, label: str, total: int, bar: bool, stream=sys.stderr):
+        self.label, self.total, self.bar, self.stream = label, total, bar, stream
+        self.start = time.perf_counter()
+        self.shown = -1
+
+    def update(self, step: int, note: str) -> None:
+        if not self.bar:
+            return
+        pct = int(100 * step / self.total)
+        if pct != self.shown:
+            self.shown = pct
+            filled = "#" * (pct // 4)
+            self.stream.write(f"\r{self.label} [{filled:<25}] {pct:3d}% {note}")
+            self.stream.flush()
+
+    def close(self, message: str) -> None:
+        minutes = (time.perf_counter() - self.start) / 60
+        prefix = "\n" if self.bar else ""
+        self.stream.write(f"{prefix}{self.label}: {message} ({minutes:.1f} min)\n")
+        self.stream.flush()
+
+
+def _prepare_folder(run_dir: Path, digest: str) -> dict[str, Any] | None:
+    """Return the summary of a finished run with the same config; clear a run whose config changed."""
+    marker = run_dir / MARKER
+    if marker.exists() and marker.read_text().strip() == digest:
+        return json.loads((run_dir / SUMMARY).read_text())
+    stored = run_dir / "config.hash"
+    if run_dir.exists() and (not stored.exists() or stored.read_text().strip() != digest):
+        shutil.rmtree(run_dir)
+    return None
+
+
+def run_experiment(cfg: DictConfig, run_dir: Path, bar: bool = True, stop_after_checkpoints: int | None = None) -> dict:
+    """Train and evaluate one configuration in ``run_dir``; resume or skip as the folder allows.
+
+    ``stop_after_checkpoints`` (for tests of resumption) stops the process abruptly after that
+    many checkpoints have been written in this call, as a kill would.
+    """
+    validate(cfg)
+    run_dir = Path(run_dir)
+    digest = config_hash(cfg)
+    finished = _prepare_folder(run_dir, digest)
+    if finished is not None:
+        Progress(run_dir.name, 1, False).close(f"already finished ({finished.get('status')}), skipped")
+        return finished
+    run_dir.mkdir(parents=True, exist_ok=True)
+    config_yaml = OmegaConf.to_yaml(cfg, resolve=True)
+    atomic_write_text(run_dir / "config.yaml", config_yaml)
+    atomic_write_text(run_dir / "config.hash", digest + "\n")
+
+    import torch
+
+    torch.set_num_threads(cfg.torch_threads)
+    env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
+    eval_env = make_env(cfg.task, "none", cfg.gamma, None)
+    settings = to_container(cfg.learner)
+    kind = settings.pop("kind")
+    learner = build_learner(kind, settings, env.observation_space, env.action_space, cfg.seed)
+    start_seeds = [cfg.evaluation.start_seed + i for i in range(cfg.evaluation.episodes)]
+
+    loop = LoopState()
+    if (run_dir / CHECKPOINT).exists():
+        saved = load_checkpoint(run_dir / CHECKPOINT)
+        learner.load_state_dict(saved["learner"])
+        loop = LoopState(**saved["loop"])
+    recorder = Recorder(run_dir, resume_step=loop.step, tensorboard=cfg.tensorboard)
+    progress = Progress(run_dir.name, cfg.budget_steps, bar)
+    if loop.step == 0:
+        recorder.text("config", config_yaml)
+    checkpoints = 0
+    status, diverged_at = "finished", None
+
+    def checkpoint() -> None:
+        nonlocal checkpoints
+        recorder.commit()
+        save_checkpoint(run_dir / CHECKPOINT, {"learner": learner.state_dict(), "loop": dataclasses.asdict(loop)})
+        checkpoints += 1
+        if stop_after_checkpoints is not None and checkpoints >= stop_after_checkpoints:
+            import os
+
+            os._exit(99)  # abrupt stop, as a kill would: nothing after the checkpoint is flushed
+
+    def run_eval() -> dict[str, float]:
+        result = evaluate(learner, eval_env, start_seeds, cfg.gamma)
+        recorder.scalars(result, loop.step, "eval/")
+        loop.last_eval = loop.step
+        loop.next_eval = loop.step + cfg.evaluation.every_steps
+        return result
+
+    try:
+        if loop.step == 0 and loop.last_eval < 0:
+            run_eval()
+        while loop.step < cfg.budget_steps and status == "finished":
+            obs, _ = env.reset(seed=episode_seed(cfg.seed, loop.episode))
+            tick = time.perf_counter()
+            learned: dict[str, list[float]] = defaultdict(list)
+            t, train_return, base_return, complete, ok = 0, 0.0, 0.0, False, False
+            while loop.step < cfg.budget_steps:
+                action = learner.act(np.asarray(obs, dtype=np.float32))
+                next_obs, reward, terminated, truncated, info = env.step(action)
+                metrics = learner.learn(Transitions.single(obs, action, reward, next_obs, terminated, truncated))
+                loop.step += 1
+                train_return += cfg.gamma**t * float(reward)
+                base_return += cfg.gamma**t * float(info.get("base_reward", reward))
+                ok = bool(info.get("success", False))
+                t += 1
+                for name, value in metrics.items():
+                    learned[name].append(float(value))
+                if metrics.get("nonfinite") or not all(np.isfinite(v) for v in metrics.values()):
+                    status, diverged_at = "diverged", loop.step
+                    break
+                if loop.step >= loop.next_eval:
+                    run_eval()
+                obs = next_obs
+                if terminated or truncated:
+                    complete = True
+                    break
+            if status == "finished" and not np.isfinite(learner.value(np.asarray(obs, dtype=np.float32)[None])[0]):
+                status, diverged_at = "diverged", loop.step
+            if complete:
+                recorder.scalars(
+                    {"discounted_return": train_return, "base_discounted_return": base_return,
+                     "length": t, "success": float(ok)},
+                    loop.step, "episode/",
+                )
+                recorder.scalars({k: float(np.mean(v)) for k, v in learned.items() if k != "nonfinite"},
+                                 loop.step, "learn/")
+                recorder.scalar("speed/steps_per_second", t / max(time.perf_counter() - tick, 1e-9), loop.step)
+                loop.episode += 1
+                progress.update(loop.step, f"episode {loop.episode}")
+                if loop.episode % cfg.checkpoint_every_episodes == 0:
+                    checkpoint()
+        final = run_eval() if loop.last_eval != loop.step else _last_eval(recorder, loop.step)
+        checkpoint()
+    except KeyboardInterrupt:
+        recorder.close()
+        progress.close("interrupted; re-run the same command to resume from the last checkpoint")
+        raise
+    summary = {"status": status, "steps": loop.step, "episodes": loop.episode, "diverged_at_step": diverged_at,
+               "config_hash": digest, "final": final}
+    recorder.hparams(_flat(to_container(cfg)), final)
+    recorder.close()
+    atomic_write_json(run_dir / SUMMARY, summary)
+    atomic_write_text(run_dir / MARKER, digest + "\n")
+    note = f"diverged at step {diverged_at}" if status == "diverged" else (
+        f"success {final['success_rate']:.2f}, discounted return {final['discounted_return']:.3f}")
+    progress.close(note)
+    return summary
+
+
+def _last_eval(recorder: Recorder, step: int) -> dict[str, float]:
+    """The evaluation already recorded at ``step`` (when the budget ended on an evaluation)."""
+    return {tag.removeprefix("eval/"): v for s, tag, v in recorder.rows if s == step and tag.startswith("eval/")}
+
+
+def _flat(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+    """Flatten a nested config into dotted keys (for the hparams view)."""
+    out: dict[str, Any] = {}
+    for key, value in tree.items():
+        if isinstance(value, dict):
+            out.update(_flat(value, f"{prefix}{key}."))
+        else:
+            out[f"{prefix}{key}"] = value
+    return out

@@ -1,0 +1,313 @@
+"""Q-network learner (DQN family) for small CPU problems.
+
+An MLP maps an observation to one Q-value per discrete action. Transitions go to a
+:class:`~qlab.learners.replay.ReplayBuffer`; after ``warmup_steps`` environment steps a gradient
+step is taken every ``update_every`` steps (once the replay holds a minibatch) on a uniformly
+sampled minibatch, regressing Q(s, a) on the n-step target ``R + d * b(s')`` where ``R`` is the
+n-step discounted reward sum, ``d`` the bootstrap discount (0 after a termination) and ``b``
+the bootstrap value from a target network (:func:`bootstrap_values`: max, or the Double DQN
+estimate of van Hasselt et al. 2016).
+The objective is the mean TD loss (squared or Huber) plus an optional L2/L1 weight penalty.
+The target network follows the online one by a periodic copy or by Polyak averaging.
+
+Randomness: network initialisation uses a ``torch.Generator`` owned by the learner (the global
+torch RNG is never read or touched); exploration and replay sampling use the learner's numpy
+``Generator``. Both states are part of :meth:`QNetLearner.state_dict`, so with the same seed and
+the same ``torch_threads`` a run and its resumed copy produce identical results on CPU.
+"""
+
+from __future__ import annotations
+
+import copy
+import itertools
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+import torch
+from gymnasium import spaces
+from torch import nn
+
+from qlab.learners.protocol import Transitions
+from qlab.learners.replay import ReplayBuffer
+from qlab.learners.schedules import SCHEDULE_KINDS, Schedule
+
+LOSSES = ("squared", "huber")
+WEIGHT_PENALTIES = ("none", "l2", "l1")
+
+
+def _require_int(name: str, value: Any, low: int) -> None:
+    if isinstance(value, bool) or int(value) != value or value < low:
+        raise ValueError(f"{name} must be an integer >= {low}, got {value!r}")
+
+
+def _require_within(name: str, value: float, low: float, high: float) -> None:
+    if not (np.isfinite(value) and low <= value <= high):
+        raise ValueError(f"{name} must lie in [{low}, {high}], got {value!r}")
+
+
+def _require_choice(name: str, value: str, choices: tuple[str, ...]) -> None:
+    if value not in choices:
+        raise ValueError(f"{name} must be one of {list(choices)}, got {value!r}")
+
+
+@dataclass
+class QNetConfig:
+    """Settings of :class:`QNetLearner` (plain fields, usable as a hydra structured config).
+
+    Counts: ``warmup_steps``, ``update_every`` and ``epsilon_horizon`` are in environment steps
+    (transitions received); ``target_update_every`` is in gradient updates.
+    """
+
+    hidden_sizes: list[int] = field(default_factory=lambda: [64, 64])  # ReLU MLP widths
+    gamma: float = 0.99
+    learning_rate: float = 1e-3  # Adam step size
+    batch_size: int = 64
+    replay_capacity: int = 100_000  # transitions
+    warmup_steps: int = 1_000  # env steps before the first update
+    update_every: int = 1  # env steps per gradient update
+    target_update_every: int = 500  # updates between hard copies (used when polyak_tau == 0)
+    polyak_tau: float = 0.0  # > 0: target <- tau * online + (1 - tau) * target after every update
+    loss: str = "huber"  # "squared" (0.5 d^2) or "huber" (0.5 d^2 inside huber_delta, linear beyond)
+    huber_delta: float = 1.0
+    weight_penalty: str = "none"  # "none", "l2" (sum w^2) or "l1" (sum |w|) over weight matrices
+    penalty_coef: float = 0.0
+    double_q: bool = True
+    n_step: int = 1
+    epsilon_kind: str = "linear"  # a qlab.learners.schedules kind, over env steps
+    epsilon_start: float = 1.0
+    epsilon_end: float = 0.05
+    epsilon_horizon: float = 10_000.0
+    max_grad_norm: float = 10.0  # 0 disables gradient-norm clipping
+    torch_threads: int = 1
+
+    def __post_init__(self) -> None:
+        if not self.hidden_sizes or any(isinstance(h, bool) or int(h) != h or h < 1 for h in self.hidden_sizes):
+            raise ValueError(f"hidden_sizes must be a non-empty list of integers >= 1, got {self.hidden_sizes!r}")
+        _require_within("gamma", self.gamma, 0.0, 1.0)
+        if not (np.isfinite(self.learning_rate) and self.learning_rate > 0):
+            raise ValueError(f"learning_rate must be a finite number > 0, got {self.learning_rate!r}")
+        _require_int("batch_size", self.batch_size, 1)
+        _require_int("replay_capacity", self.replay_capacity, 1)
+        if self.replay_capacity < self.batch_size:
+            raise ValueError(
+                f"replay_capacity must be >= batch_size ({self.batch_size}), got {self.replay_capacity!r}"
+            )
+        _require_int("warmup_steps", self.warmup_steps, 0)
+        _require_int("update_every", self.update_every, 1)
+        _require_int("target_update_every", self.target_update_every, 1)
+        _require_within("polyak_tau", self.polyak_tau, 0.0, 1.0)
+        _require_choice("loss", self.loss, LOSSES)
+        if not (np.isfinite(self.huber_delta) and self.huber_delta > 0):
+            raise ValueError(f"huber_delta must be a finite number > 0, got {self.huber_delta!r}")
+        _require_choice("weight_penalty", self.weight_penalty, WEIGHT_PENALTIES)
+        if not (np.isfinite(self.penalty_coef) and self.penalty_coef >= 0):
+            raise ValueError(f"penalty_coef must be a finite number >= 0, got {self.penalty_coef!r}")
+        _require_int("n_step", self.n_step, 1)
+        _require_choice("epsilon_kind", self.epsilon_kind, SCHEDULE_KINDS)
+        _require_within("epsilon_start", self.epsilon_start, 0.0, 1.0)
+        _require_within("epsilon_end", self.epsilon_end, 0.0, 1.0)
+        if not (np.isfinite(self.epsilon_horizon) and self.epsilon_horizon > 0):
+            raise ValueError(f"epsilon_horizon must be a finite number > 0, got {self.epsilon_horizon!r}")
+        if not (np.isfinite(self.max_grad_norm) and self.max_grad_norm >= 0):
+            raise ValueError(f"max_grad_norm must be a finite number >= 0 (0 disables), got {self.max_grad_norm!r}")
+        _require_int("torch_threads", self.torch_threads, 1)
+
+    def epsilon(self) -> Schedule:
+        """The exploration schedule described by the ``epsilon_*`` fields."""
+        return Schedule(
+            kind=self.epsilon_kind, start=self.epsilon_start, end=self.epsilon_end, horizon=self.epsilon_horizon
+        )
+
+
+def bootstrap_values(q_online_next: torch.Tensor, q_target_next: torch.Tensor, double: bool) -> torch.Tensor:
+    """Bootstrap value of each next state from ``(B, n_actions)`` Q estimates, shape ``(B,)``.
+
+    ``double=False``: the single max estimator ``max_a Q_target(s', a)``, biased upwards when the
+    estimates are noisy. ``double=True``: the double estimator, the target network's value of the
+    online network's greedy action, ``Q_target(s', argmax_a Q_online(s', a))`` (van Hasselt 2010;
+    van Hasselt, Guez & Silver 2016).
+    """
+    if not double:
+        return q_target_next.max(dim=1).values
+    choice = q_online_next.argmax(dim=1, keepdim=True)
+    return q_target_next.gather(1, choice).squeeze(1)
+
+
+def _mlp(obs_dim: int, hidden_sizes: list[int], n_actions: int, generator: torch.Generator) -> nn.Sequential:
+    """ReLU MLP; weights and biases ~ U(-1/sqrt(fan_in), 1/sqrt(fan_in)) drawn from ``generator``."""
+    widths = [obs_dim, *(int(h) for h in hidden_sizes), n_actions]
+    layers: list[nn.Module] = []
+    for fan_in, fan_out in itertools.pairwise(widths):
+        linear = nn.utils.skip_init(nn.Linear, fan_in, fan_out)
+        bound = 1.0 / np.sqrt(fan_in)
+        with torch.no_grad():
+            nn.init.uniform_(linear.weight, -bound, bound, generator=generator)
+            nn.init.uniform_(linear.bias, -bound, bound, generator=generator)
+        layers += [linear, nn.ReLU()]
+    return nn.Sequential(*layers[:-1])
+
+
+class QNetLearner:
+    """DQN-family learner for a ``Box`` observation space and a ``Discrete`` action space."""
+
+    def __init__(
+        self,
+        observation_space: spaces.Space,
+        action_space: spaces.Space,
+        config: QNetConfig | None = None,
+        seed: int = 0,
+    ):
+        if not isinstance(action_space, spaces.Discrete) or int(action_space.start) != 0:
+            raise ValueError(f"action_space must be gymnasium Discrete(n) starting at 0, got {action_space!r}")
+        if not isinstance(observation_space, spaces.Box) or len(observation_space.shape) != 1:
+            raise ValueError(f"observation_space must be a 1-D gymnasium Box, got {observation_space!r}")
+        self.config = config = QNetConfig() if config is None else config
+        torch.set_num_threads(config.torch_threads)
+        self.obs_dim = int(observation_space.shape[0])
+        self.n_actions = int(action_space.n)
+        self.epsilon = config.epsilon()
+        self.rng = np.random.default_rng(seed)
+        self.torch_generator = torch.Generator().manual_seed(int(seed))
+        self.online = _mlp(self.obs_dim, config.hidden_sizes, self.n_actions, self.torch_generator)
+        self.target = copy.deepcopy(self.online).requires_grad_(False)
+        self.optimizer = torch.optim.Adam(self.online.parameters(), lr=config.learning_rate)
+        self._weights = [m.weight for m in self.online if isinstance(m, nn.Linear)]
+        self.replay = ReplayBuffer(
+            config.replay_capacity, self.obs_dim, config.gamma, config.n_step, obs_dtype=np.float32
+        )
+        self.env_steps = 0
+        self.updates = 0
+
+    # --- acting ----------------------------------------------------------------------------
+
+    def _q(self, obs: np.ndarray) -> torch.Tensor:
+        x = torch.from_numpy(np.asarray(obs, dtype=np.float32).reshape(-1, self.obs_dim))
+        with torch.no_grad():
+            return self.online(x)
+
+    def act(self, obs: np.ndarray) -> int:
+        """Epsilon-greedy action for one observation; epsilon follows the schedule over env steps."""
+        if self.rng.random() < self.epsilon(self.env_steps):
+            return int(self.rng.integers(self.n_actions))
+        return int(self._q(obs).argmax(dim=1)[0])
+
+    def greedy(self, obs: np.ndarray) -> np.ndarray:
+        """Greedy actions for a batch ``(B, obs_dim)``, shape ``(B,)`` int64 (ties: lowest index)."""
+        return self._q(obs).argmax(dim=1).numpy().astype(np.int64)
+
+    def value(self, obs: np.ndarray) -> np.ndarray:
+        """max_a Q(obs, a) for a batch, shape ``(B,)``."""
+        return self._q(obs).max(dim=1).values.numpy().astype(np.float64)
+
+    def q_values(self, obs: np.ndarray) -> np.ndarray:
+        """Q(obs, a) for every action, shape ``(B, n_actions)``."""
+        return self._q(obs).numpy().astype(np.float64)
+
+    # --- learning --------------------------------------------------------------------------
+
+    def learn(self, batch: Transitions) -> dict[str, float]:
+        """Store the transitions and take the gradient updates now due; metrics of the last update.
+
+        Returns ``{}`` when no update happened, else ``td_loss``, ``penalty``, ``q_mean``, ``q_max``
+        (of Q(s, a) on the minibatch), ``grad_norm`` (before clipping), ``epsilon``, ``updates``
+        (total so far) and ``nonfinite`` (1.0 if the loss, Q or gradient were not finite; that
+        update is then skipped and the run should be treated as diverged).
+        """
+        self.replay.add(batch)
+        before = self.env_steps
+        self.env_steps += len(batch)
+        cfg = self.config
+        due = self.env_steps // cfg.update_every - max(before, cfg.warmup_steps - 1) // cfg.update_every
+        if self.env_steps < cfg.warmup_steps or len(self.replay) < cfg.batch_size or due <= 0:
+            return {}
+        metrics: dict[str, float] = {}
+        for _ in range(due):
+            metrics = self._update()
+        metrics["epsilon"] = float(self.epsilon(self.env_steps))
+        return metrics
+
+    def _update(self) -> dict[str, float]:
+        cfg = self.config
+        sample = self.replay.sample(cfg.batch_size, self.rng)
+        obs = torch.from_numpy(sample.obs)
+        next_obs = torch.from_numpy(sample.next_obs)
+        action = torch.from_numpy(sample.action).unsqueeze(1)
+        with torch.no_grad():
+            q_target_next = self.target(next_obs)
+            q_online_next = self.online(next_obs) if cfg.double_q else q_target_next
+            boot = bootstrap_values(q_online_next, q_target_next, cfg.double_q)
+            y = torch.from_numpy(sample.reward).float() + torch.from_numpy(sample.discount).float() * boot
+        q = self.online(obs).gather(1, action).squeeze(1)
+        if cfg.loss == "huber":
+            td_loss = nn.functional.huber_loss(q, y, delta=cfg.huber_delta)
+        else:  # squared
+            td_loss = 0.5 * nn.functional.mse_loss(q, y)
+        if cfg.weight_penalty == "l2":
+            penalty = sum(w.square().sum() for w in self._weights)
+        elif cfg.weight_penalty == "l1":
+            penalty = sum(w.abs().sum() for w in self._weights)
+        else:
+            penalty = torch.zeros(())
+        self.optimizer.zero_grad(set_to_none=True)
+        (td_loss + cfg.penalty_coef * penalty).backward()
+        max_norm = cfg.max_grad_norm if cfg.max_grad_norm > 0 else float("inf")
+        grad_norm = nn.utils.clip_grad_norm_(self.online.parameters(), max_norm)
+        stats = torch.stack([td_loss.detach(), penalty.detach(), q.detach().mean(), q.detach().max(), grad_norm])
+        td, pen, q_mean, q_max, norm = stats.tolist()
+        nonfinite = not np.isfinite([td, pen, q_mean, q_max, norm]).all()
+        if not nonfinite:
+            self.optimizer.step()
+            self.updates += 1
+            self._follow_target()
+        return {
+            "td_loss": td,
+            "penalty": pen,
+            "q_mean": q_mean,
+            "q_max": q_max,
+            "grad_norm": norm,
+            "updates": float(self.updates),
+            "nonfinite": float(nonfinite),
+        }
+
+    def _follow_target(self) -> None:
+        tau = self.config.polyak_tau
+        if tau > 0:
+            with torch.no_grad():
+                for target_param, online_param in zip(self.target.parameters(), self.online.parameters(), strict=True):
+                    target_param.lerp_(online_param, tau)
+        elif self.updates % self.config.target_update_every == 0:
+            self.target.load_state_dict(self.online.state_dict())
+
+    # --- checkpoints -----------------------------------------------------------------------
+
+    def state_dict(self) -> dict[str, Any]:
+        """Copies of everything needed to resume exactly (networks, Adam, counters, RNGs, replay)."""
+        opt = self.optimizer.state_dict()
+        return {
+            "online": {k: v.detach().clone() for k, v in self.online.state_dict().items()},
+            "target": {k: v.detach().clone() for k, v in self.target.state_dict().items()},
+            "optimizer": {
+                "state": {str(i): {k: v.clone() for k, v in s.items()} for i, s in opt["state"].items()},
+                "param_groups": [{k: list(v) if isinstance(v, tuple) else v for k, v in g.items()}
+                                 for g in opt["param_groups"]],
+            },
+            "counters": {"env_steps": self.env_steps, "updates": self.updates},
+            "rng": {"numpy": self.rng.bit_generator.state, "torch": self.torch_generator.get_state()},
+            "replay": self.replay.state_dict(),
+        }
+
+    def load_state_dict(self, state: dict[str, Any]) -> None:
+        """Restore a state from :meth:`state_dict` (directly or after a checkpoint round trip)."""
+        self.online.load_state_dict(state["online"])
+        self.target.load_state_dict(state["target"])
+        opt = state["optimizer"]
+        self.optimizer.load_state_dict({
+            "state": {int(i): dict(s) for i, s in opt["state"].items()},
+            "param_groups": [{k: tuple(v) if k == "betas" else v for k, v in g.items()} for g in opt["param_groups"]],
+        })
+        self.env_steps = int(state["counters"]["env_steps"])
+        self.updates = int(state["counters"]["updates"])
+        self.rng.bit_generator.state = state["rng"]["numpy"]
+        self.torch_generator.set_state(state["rng"]["torch"])
+        self.replay.load_state_dict(state["replay"])

@@ -1,0 +1,49 @@
+"""Tabular Q-learning on a uniform grid of the observation space (Watkins 1989).
+
+``Q[cell(s), a] += alpha * (r + gamma * max_b Q[cell(s'), b] - Q[cell(s), a])``, the bootstrap
+term dropped when the step *terminated* (kept when it was only *truncated* by a time cap). A
+table is a linear function of one-hot cell features (Sutton & Barto 2018, sec. 9.3), so this is
+:class:`~qlab.learners.linear.LinearQ` on :class:`~qlab.features.GridBins`, with the same batch,
+step-size (``step_size_count="visits"``: the visit count of the cell-action pair) and
+exploration rules.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass, field
+
+import numpy as np
+from gymnasium import spaces
+
+from qlab.features import GridBins, check_bins, resolve_bounds
+from qlab.learners.linear import LinearQ, QLearningConfig
+
+
+@dataclass
+class TabularConfig(QLearningConfig):
+    """Q-learning on a grid of ``bins`` cells per observation dimension."""
+
+    bins: list[int] = field(default_factory=lambda: [20])  # cells per dimension (one value for all)
+    low: list[float] = field(default_factory=list)  # grid lower bounds; empty: the observation space's
+    high: list[float] = field(default_factory=list)  # grid upper bounds; empty: the observation space's
+    initial_q: float = 0.0  # starting value of every table entry
+
+    def __post_init__(self) -> None:
+        super().__post_init__()
+        check_bins("bins", self.bins)
+        if not np.isfinite(self.initial_q):
+            raise ValueError(f"initial_q must be finite, got {self.initial_q!r}")
+
+
+class TabularQ(LinearQ):
+    """One Q-value per grid cell and discrete action."""
+
+    def __init__(self, observation_space: spaces.Space, action_space: spaces.Space, config: TabularConfig, seed: int):
+        low, high = resolve_bounds(observation_space, config.low, config.high)
+        grid = GridBins(low, high, config.bins)
+        self._setup(grid, action_space, config, seed, normalise=False, initial_weight=config.initial_q)
+
+    @property
+    def table(self) -> np.ndarray:
+        """The Q-table ``(n_cells, n_actions)`` (a view; cells in C order of the grid)."""
+        return self.weights

@@ -1,0 +1,114 @@
+"""What a run leaves on disk: metrics table, tensorboard events, summary, finish marker.
+
+Layout of one run folder::
+
+    config.yaml        resolved config (written once, atomically)
+    metrics.csv        long table: step, tag, value (rewritten atomically at each checkpoint)
+    tb/                tensorboard events (scalars, config text); tb/hparams/ the hparams entry
+    checkpoint/        learner and loop state (see qlab.checkpoint)
+    summary.json       final numbers and status (finished or diverged)
+    FINISHED           marker holding the config hash; a sweep skips runs whose marker matches
+
+Tags are grouped by prefix: ``episode/`` (training episodes), ``eval/`` (greedy evaluation on
+the task's own reward), ``learn/`` (learning internals) and ``speed/``.
+"""
+
+from __future__ import annotations
+
+import csv
+import io
+import json
+import os
+import tempfile
+from pathlib import Path
+from typing import Any
+
+MARKER = "FINISHED"
+METRICS = "metrics.csv"
+SUMMARY = "summary.json"
+
+
+def atomic_write_text(path: Path, text: str) -> None:
+    """Write ``text`` to ``path`` through a temporary file and a rename (never half-written)."""
+    path.parent.mkdir(parents=True, exist_ok=True)
+    fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    try:
+        with os.fdopen(fd, "w", encoding="utf-8") as fh:
+            fh.write(text)
+            fh.flush()
+            os.fsync(fh.fileno())
+        os.replace(tmp, path)
+    except BaseException:
+        Path(tmp).unlink(missing_ok=True)
+        raise
+
+
+def atomic_write_json(path: Path, data: Any) -> None:
+    """Atomically write ``data`` as indented JSON."""
+    atomic_write_text(path, json.dumps(data, indent=2, sort_keys=True) + "\n")
+
+
+def read_metrics(run_dir: Path) -> list[tuple[int, str, float]]:
+    """Rows (step, tag, value) of a run's metrics table; empty if none yet."""
+    path = Path(run_dir) / METRICS
+    if not path.exists():
+        return []
+    with path.open(newline="") as fh:
+        return [(int(r["step"]), r["tag"], float(r["value"])) for r in csv.DictReader(fh)]
+
+
+class Recorder:
+    """Collects scalars for one run; mirrors them to tensorboard and to the metrics table.
+
+    Rows live in memory and reach ``metrics.csv`` at each :meth:`commit` (called with every
+    checkpoint), so the table on disk always matches the last checkpoint. On resume the table
+    is reloaded up to the checkpoint's step and tensorboard purges events after that step.
+    """
+
+    def __init__(self, run_dir: Path, resume_step: int = 0, tensorboard: bool = True):
+        self.run_dir = Path(run_dir)
+        self.rows = [row for row in read_metrics(self.run_dir) if row[0] <= resume_step] if resume_step else []
+        self.writer = None
+        if tensorboard:
+            from torch.utils.tensorboard import SummaryWriter
+
+            self.writer = SummaryWriter(str(self.run_dir / "tb"), purge_step=resume_step or None)
+
+    def scalar(self, tag: str, value: float, step: int) -> None:
+        """Record one scalar at an environment step."""
+        self.rows.append((int(step), tag, float(value)))
+        if self.writer is not None:
+            self.writer.add_scalar(tag, float(value), int(step))
+
+    def scalars(self, values: dict[str, float], step: int, prefix: str) -> None:
+        """Record several scalars under one tag prefix, e.g. ``eval/``."""
+        for name, value in values.items():
+            self.scalar(f"{prefix}{name}", value, step)
+
+    def text(self, tag: str, body: str) -> None:
+        """Attach text (e.g. the resolved config) to the tensorboard run."""
+        if self.writer is not None:
+            self.writer.add_text(tag, f"```\n{body}\n```", 0)
+
+    def commit(self) -> None:
+        """Write the metrics table atomically and flush tensorboard."""
+        buf = io.StringIO()
+        out = csv.writer(buf, lineterminator="\n")
+        out.writerow(["step", "tag", "value"])
+        out.writerows((s, t, repr(v)) for s, t, v in self.rows)
+        atomic_write_text(self.run_dir / METRICS, buf.getvalue())
+        if self.writer is not None:
+            self.writer.flush()
+
+    def hparams(self, params: dict[str, Any], final: dict[str, float]) -> None:
+        """Link the run's settings to its final metrics in tensorboard's hparams view."""
+        if self.writer is not None:
+            clean = {k: v if isinstance(v, int | float | str | bool) else str(v) for k, v in params.items()}
+            self.writer.add_hparams(clean, {f"final/{k}": v for k, v in final.items()}, run_name="hparams")
+
+    def close(self) -> None:
+        """Flush and close tensorboard writers."""
+        if self.writer is not None:
+            self.writer.flush()
+            self.writer.close()
+            self.writer = None

@@ -1,0 +1,303 @@
+"""Q-network learner: target estimators, convergence to exact answers, exact resume, settings checks."""
+
+from __future__ import annotations
+
+import gymnasium as gym
+import numpy as np
+import pytest
+import scipy.integrate
+import scipy.stats
+import torch
+from gymnasium import spaces
+
+import qlab  # noqa: F401  (registers the qlab tasks)
+from qlab.checkpoint import load_checkpoint, save_checkpoint
+from qlab.learners.protocol import Learner, Transitions
+from qlab.learners.qnet import QNetConfig, QNetLearner, bootstrap_values
+from qlab.reference import lq_solution, value_iteration
+
+# --- max vs double estimator (van Hasselt 2010) ------------------------------------------------
+
+
+def _expected_max_of_normals(n: int) -> float:
+    """E[max of n iid N(0, 1)] = integral of x n phi(x) Phi(x)^(n-1) dx (scipy.integrate.quad, scipy.stats.norm)."""
+    norm = scipy.stats.norm
+    value, _ = scipy.integrate.quad(lambda x: x * n * norm.pdf(x) * norm.cdf(x) ** (n - 1), -np.inf, np.inf)
+    return value
+
+
+@pytest.mark.parametrize("n_actions", [2, 3, 5, 10])
+def test_max_estimator_bias_and_unbiased_double_estimator(n_actions):
+    samples = 200_000
+    gen = torch.Generator().manual_seed(n_actions)
+    # every action's true value is 0; both networks' estimates carry independent N(0, 1) noise
+    q_online = torch.randn(samples, n_actions, generator=gen, dtype=torch.float64)
+    q_target = torch.randn(samples, n_actions, generator=gen, dtype=torch.float64)
+    single = bootstrap_values(q_online, q_target, double=False).numpy()
+    double = bootstrap_values(q_online, q_target, double=True).numpy()
+    if n_actions == 2:
+        expected = 1.0 / np.sqrt(np.pi)  # expected maximum of 2 standard normals (order statistics; from memory)
+    elif n_actions == 3:
+        expected = 3.0 / (2.0 * np.sqrt(np.pi))  # expected maximum of 3 standard normals (order statistics)
+    else:
+        expected = _expected_max_of_normals(n_actions)  # scipy.integrate.quad with scipy.stats.norm
+    se_single = single.std(ddof=1) / np.sqrt(samples)
+    assert abs(single.mean() - expected) < 3 * se_single
+    # van Hasselt (2010), "Double Q-learning": the double estimator is unbiased here (never over)
+    se_double = double.std(ddof=1) / np.sqrt(samples)
+    assert abs(double.mean()) < 3 * se_double
+
+
+def test_closed_forms_agree_with_the_integral():
+    # order statistics of the normal vs scipy.integrate.quad (the two references used above)
+    assert _expected_max_of_normals(2) == pytest.approx(1.0 / np.sqrt(np.pi), abs=1e-9)
+    assert _expected_max_of_normals(3) == pytest.approx(3.0 / (2.0 * np.sqrt(np.pi)), abs=1e-9)
+
+
+# --- convergence on a finite MDP ------------------------------------------------------------
+
+
+def _slippery_chain(n_states: int = 6, slip: float = 0.1) -> tuple[np.ndarray, np.ndarray]:
+    """Chain 0..n-1, last state an absorbing goal; 'left'/'right' move as told w.p. 1 - 2*slip,
+    stay w.p. slip, move the other way w.p. slip; reward 1 on entering the goal."""
+    goal = n_states - 1
+    P = np.zeros((2, n_states, n_states))
+    for s in range(goal):
+        for a, step in ((0, -1), (1, 1)):
+            for move, p in ((step, 1 - 2 * slip), (0, slip), (-step, slip)):
+                P[a, s, min(max(s + move, 0), goal)] += p
+    P[:, goal, goal] = 1.0
+    R = P[:, :, goal].T.copy()
+    R[goal] = 0.0
+    return P, R
+
+
+def test_q_converges_to_value_iteration_on_a_finite_mdp():
+    P, R = _slippery_chain()
+    gamma, n_states, goal = 0.9, P.shape[1], P.shape[1] - 1
+    q_star = value_iteration(P, R, gamma)  # exact Q* (qlab.reference, checked there against Sutton & Barto)
+    cfg = QNetConfig(hidden_sizes=[32], gamma=gamma, learning_rate=3e-3, batch_size=64, replay_capacity=20_000,
+                     warmup_steps=256, update_every=16, target_update_every=50, loss="squared", double_q=True,
+                     epsilon_start=0.0, epsilon_end=0.0)
+    learner = QNetLearner(spaces.Box(0.0, 1.0, (n_states,)), spaces.Discrete(2), cfg, seed=0)
+    rng = np.random.default_rng(0)
+    one_hot = np.eye(n_states, dtype=np.float32)
+    cumulative = P.cumsum(axis=2)
+    for _ in range(1500):  # 16 transitions from uniformly drawn (s, a) per call, one update per call
+        s, a = rng.integers(0, goal, 16), rng.integers(0, 2, 16)
+        s_next = (rng.random(16)[:, None] > cumulative[a, s]).sum(axis=1)
+        reached = s_next == goal
+        learner.learn(Transitions(one_hot[s], a, reached.astype(np.float64), one_hot[s_next], reached,
+                                  np.zeros(16, bool)))
+    q = learner.q_values(one_hot[:goal])
+    assert np.abs(q - q_star[:goal]).max() < 0.1
+    np.testing.assert_array_equal(learner.greedy(one_hot[:goal]), q_star[:goal].argmax(axis=1))
+
+
+# --- linear-quadratic calibration -----------------------------------------------------------
+
+
+def test_greedy_action_follows_the_lq_gain():
+    gamma = 0.9
+    A, B, Q, R = [[1.0]], [[1.0]], [[1.0]], [[1.0]]
+    env = gym.make("qlab/LinearQuadratic-v0", A=A, B=B, Q=Q, R=R, action_kind="discrete", n_levels=21,
+                   control_bound=1.0, max_steps=50)
+    task = env.unwrapped
+    K, _ = lq_solution(A, B, Q, R, gamma)  # discounted Riccati solution (qlab.reference.lq, checked there)
+    cfg = QNetConfig(hidden_sizes=[64, 64], gamma=gamma, learning_rate=1e-3, batch_size=128, replay_capacity=50_000,
+                     warmup_steps=512, update_every=16, target_update_every=100, loss="squared", double_q=True,
+                     epsilon_start=0.0, epsilon_end=0.0)
+    learner = QNetLearner(env.observation_space, env.action_space, cfg, seed=0)
+    rng = np.random.default_rng(0)
+    for _ in range(2500):  # states uniform on [-2, 2], actions uniform on the grid: the task's own physics
+        x, a = rng.uniform(-2.0, 2.0, (16, 1)), rng.integers(0, 21, 16)
+        out = task.batch_step(x, task.controls(a), rng)
+        learner.learn(Transitions(task.observe(x), a, out.base_reward, task.observe(out.next_state),
+                                  out.terminated, np.zeros(16, bool)))
+    levels = task.control_levels[:, 0]
+    spacing = levels[1] - levels[0]  # 0.1
+    xs = np.linspace(-1.0, 1.0, 41)[:, None]  # well inside the data; -K x stays inside the grid
+    u = levels[learner.greedy(xs.astype(np.float32))]
+    error_in_steps = np.abs(u - (-K[0, 0] * xs[:, 0])) / spacing
+    # the nearest level is within half a step; allow one more level of learning error
+    assert error_in_steps.max() <= 1.5
+
+
+# --- exact resume --------------------------------------------------------------------------
+
+RESUME_CFG = QNetConfig(hidden_sizes=[16, 16], gamma=0.95, learning_rate=1e-3, batch_size=16, replay_capacity=500,
+                        warmup_steps=40, update_every=2, target_update_every=10, n_step=3, double_q=True,
+                        epsilon_kind="linear", epsilon_start=1.0, epsilon_end=0.1, epsilon_horizon=150.0)
+
+
+def _make_env() -> gym.Env:
+    return gym.make("qlab/LinearQuadratic-v0", action_kind="discrete", n_levels=5, noise_cov=[[1e-4, 0], [0, 1e-4]],
+                    max_steps=25)
+
+
+def _train(seed: int, n_episodes: int, ckpt=None, stop_after: int | None = None, resume: bool = False):
+    """Episodes with resets seeded from (run seed, episode index); checkpoint after every episode."""
+    env = _make_env()
+    learner = QNetLearner(env.observation_space, env.action_space, RESUME_CFG, seed=seed if not resume else 12345)
+    returns: list[float] = []
+    start = 0
+    if resume:
+        tree = load_checkpoint(ckpt)
+        learner.load_state_dict(tree["learner"])
+        returns, start = list(tree["loop"]["returns"]), int(tree["loop"]["episode"])
+    saved = 0
+    for episode in range(start, n_episodes):
+        reset_seed = int(np.random.SeedSequence([seed, episode]).generate_state(1)[0])
+        obs, _ = env.reset(seed=reset_seed)
+        total, done = 0.0, False
+        while not done:
+            action = learner.act(obs)
+            next_obs, reward, terminated, truncated, _ = env.step(action)
+            learner.learn(Transitions.single(obs, action, reward, next_obs, terminated, truncated))
+            obs, total, done = next_obs, total + reward, terminated or truncated
+        returns.append(total)
+        if ckpt is not None:
+            loop = {"episode": episode + 1, "returns": returns}
+            save_checkpoint(ckpt, {"learner": learner.state_dict(), "loop": loop})
+            saved += 1
+            if saved == stop_after:
+                break
+    return learner, returns
+
+
+def _assert_same_tree(a, b, path=""):
+    if isinstance(a, dict):
+        assert set(a) == set(b), path
+        for key in a:
+            _assert_same_tree(a[key], b[key], f"{path}/{key}")
+    elif isinstance(a, list | tuple):
+        assert len(a) == len(b), path
+        for i, (x, y) in enumerate(zip(a, b, strict=True)):
+            _assert_same_tree(x, y, f"{path}/{i}")
+    elif isinstance(a, torch.Tensor):
+        assert torch.equal(a, b), path
+    elif isinstance(a, np.ndarray):
+        np.testing.assert_array_equal(a, b, err_msg=path)
+    else:
+        assert a == b, path
+
+
+def test_resume_from_checkpoint_equals_uninterrupted_run(tmp_path):
+    seed, n_episodes = 7, 7
+    full, full_returns = _train(seed, n_episodes)
+    _, first_part = _train(seed, n_episodes, ckpt=tmp_path / "run", stop_after=3)
+    assert len(first_part) == 3
+    resumed, resumed_returns = _train(seed, n_episodes, ckpt=tmp_path / "run", resume=True)
+    assert full.updates > 0 and resumed.updates == full.updates
+    assert resumed_returns == full_returns
+    _assert_same_tree(full.state_dict(), resumed.state_dict())
+
+
+def test_same_seed_same_run_and_other_seed_differs():
+    _, a = _train(3, 3)
+    _, b = _train(3, 3)
+    _, c = _train(4, 3)
+    assert a == b and a != c
+
+
+# --- mechanics ----------------------------------------------------------------------------
+
+
+def _filled_learner(cfg: QNetConfig, reward: float = 0.0, seed: int = 0) -> tuple[QNetLearner, Transitions]:
+    learner = QNetLearner(spaces.Box(-1.0, 1.0, (3,)), spaces.Discrete(4), cfg, seed=seed)
+    rng = np.random.default_rng(seed)
+    batch = Transitions(rng.uniform(-1, 1, (8, 3)).astype(np.float32), rng.integers(0, 4, 8), np.full(8, reward),
+                        rng.uniform(-1, 1, (8, 3)).astype(np.float32), np.zeros(8, bool), np.zeros(8, bool))
+    return learner, batch
+
+
+def test_learner_honours_the_protocol_shapes():
+    learner, batch = _filled_learner(QNetConfig(batch_size=4, warmup_steps=8, update_every=8))
+    assert isinstance(learner, Learner)
+    assert learner.learn(batch)["updates"] == 1.0
+    obs = batch.obs
+    q = learner.q_values(obs)
+    assert q.shape == (8, 4)
+    np.testing.assert_array_equal(learner.greedy(obs), q.argmax(axis=1))
+    np.testing.assert_allclose(learner.value(obs), q.max(axis=1))
+    assert learner.act(obs[0]) in range(4)
+
+
+def test_no_update_before_warmup_then_every_k_steps():
+    learner, batch = _filled_learner(QNetConfig(batch_size=4, warmup_steps=16, update_every=4))
+    assert learner.learn(batch) == {}  # 8 env steps < warm-up
+    metrics = learner.learn(batch)  # steps 9..16: updates due at 16 only
+    assert metrics["updates"] == 1.0
+    assert learner.learn(batch)["updates"] == 3.0  # steps 17..24: due at 20 and 24
+
+
+def test_periodic_copy_and_polyak_target():
+    learner, batch = _filled_learner(QNetConfig(batch_size=4, warmup_steps=0, update_every=8, target_update_every=2))
+    initial = [p.clone() for p in learner.target.parameters()]
+    learner.learn(batch)  # one update: target still the initial copy
+    assert all(torch.equal(p, q) for p, q in zip(learner.target.parameters(), initial, strict=True))
+    learner.learn(batch)  # second update: hard copy
+    assert all(torch.equal(p, q) for p, q in zip(learner.target.parameters(), learner.online.parameters(), strict=True))
+
+    tau = 0.25
+    learner, batch = _filled_learner(QNetConfig(batch_size=4, warmup_steps=0, update_every=8, polyak_tau=tau))
+    old_target = [p.clone() for p in learner.target.parameters()]
+    learner.learn(batch)
+    # soft target update theta' <- tau theta + (1 - tau) theta' (Lillicrap et al. 2016, Algorithm 1)
+    for new, old, online in zip(learner.target.parameters(), old_target, learner.online.parameters(), strict=True):
+        torch.testing.assert_close(new, tau * online + (1 - tau) * old)
+
+
+@pytest.mark.parametrize("kind", ["l2", "l1"])
+def test_weight_penalty_is_reported_on_the_weight_matrices(kind):
+    cfg = QNetConfig(batch_size=4, warmup_steps=0, update_every=8, weight_penalty=kind, penalty_coef=0.1)
+    learner, batch = _filled_learner(cfg)
+    weights = [m.weight.detach().clone() for m in learner.online if isinstance(m, torch.nn.Linear)]
+    expected = sum(float((w**2 if kind == "l2" else w.abs()).sum()) for w in weights)
+    assert learner.learn(batch)["penalty"] == pytest.approx(expected, rel=1e-5)
+
+
+def test_nonfinite_loss_is_flagged_and_the_update_skipped():
+    learner, batch = _filled_learner(QNetConfig(batch_size=4, warmup_steps=0, update_every=8), reward=np.inf)
+    before = [p.clone() for p in learner.online.parameters()]
+    metrics = learner.learn(batch)
+    assert metrics["nonfinite"] == 1.0 and metrics["updates"] == 0.0
+    assert all(torch.equal(p, q) for p, q in zip(learner.online.parameters(), before, strict=True))
+
+
+@pytest.mark.parametrize(
+    ("changes", "name"),
+    [
+        ({"batch_size": 0}, "batch_size"),
+        ({"batch_size": 64, "replay_capacity": 32}, "replay_capacity"),
+        ({"loss": "absolute"}, "loss"),
+        ({"n_step": 0}, "n_step"),
+        ({"weight_penalty": "l3"}, "weight_penalty"),
+        ({"penalty_coef": -1.0}, "penalty_coef"),
+        ({"polyak_tau": 1.5}, "polyak_tau"),
+        ({"target_update_every": 0}, "target_update_every"),
+        ({"update_every": 0}, "update_every"),
+        ({"warmup_steps": -1}, "warmup_steps"),
+        ({"hidden_sizes": []}, "hidden_sizes"),
+        ({"hidden_sizes": [8, 0]}, "hidden_sizes"),
+        ({"gamma": 1.2}, "gamma"),
+        ({"learning_rate": 0.0}, "learning_rate"),
+        ({"huber_delta": 0.0}, "huber_delta"),
+        ({"epsilon_kind": "cosine"}, "epsilon_kind"),
+        ({"epsilon_start": 2.0}, "epsilon_start"),
+        ({"epsilon_horizon": 0.0}, "epsilon_horizon"),
+        ({"max_grad_norm": -1.0}, "max_grad_norm"),
+        ({"torch_threads": 0}, "torch_threads"),
+    ],
+)
+def test_bad_settings_raise_naming_the_setting(changes, name):
+    with pytest.raises(ValueError, match=name):
+        QNetConfig(**changes)
+
+
+def test_only_discrete_actions_and_flat_boxes():
+    box = spaces.Box(-1.0, 1.0, (2,))
+    with pytest.raises(ValueError, match="action_space"):
+        QNetLearner(box, spaces.Box(-1.0, 1.0, (1,)), QNetConfig(), seed=0)
+    with pytest.raises(ValueError, match="observation_space"):
+        QNetLearner(spaces.Discrete(3), spaces.Discrete(2), QNetConfig(), seed=0)

@@ -1,0 +1,158 @@
+"""Behaviour every qlab task shares: gymnasium's checker, seeding, batching, shaping."""
+
+import warnings
+
+import gymnasium as gym
+import numpy as np
+import pytest
+from gymnasium.utils.env_checker import check_env
+from hypothesis import given
+from hypothesis import strategies as st
+
+import qlab  # noqa: F401  (registers the tasks)
+from qlab.returns import discounted_return
+from qlab.tasks import TASK_IDS, TaskBatch
+
+# Small physical variations per task (bounded so episodes stay short and physical).
+PARAMS = {
+    "qlab/Dock-v0": st.fixed_dictionaries(
+        {"mass_kg": st.floats(500.0, 5000.0), "velocity_noise_m_s": st.sampled_from([0.0, 0.05]),
+         "start_distance_m": st.sampled_from([(5.0, 10.0), (20.0, 40.0)])}
+    ),
+    "qlab/Kiln-v0": st.fixed_dictionaries(
+        {"dead_time_steps": st.integers(0, 6), "observe_pending": st.booleans()}
+    ),
+    "qlab/Crane-v0": st.fixed_dictionaries(
+        {"mass_load_kg": st.floats(200.0, 2000.0), "rope_length_m": st.floats(2.0, 8.0),
+         "lock_trolley": st.booleans()}
+    ),
+    "qlab/LinearQuadratic-v0": st.fixed_dictionaries(
+        {"dt_s": st.floats(0.05, 0.2), "action_kind": st.sampled_from(["continuous", "discrete"])}
+    ),
+}
+SHAPED = [(task_id, variant) for task_id in TASK_IDS for variant in ("none", "potential", "progress")
+          if task_id != "qlab/LinearQuadratic-v0" or variant == "none"]
+
+
+def rollout(env: gym.Env, seed: int, actions: list[int]) -> list[tuple]:
+    """Observations, rewards and flags of a trajectory under a fixed action sequence."""
+    obs, _ = env.reset(seed=seed)
+    env.action_space.seed(seed)
+    trace = [(obs.copy(),)]
+    for i in range(len(actions)):
+        a = actions[i] % env.action_space.n if isinstance(env.action_space, gym.spaces.Discrete) \
+            else env.action_space.sample()
+        obs, reward, terminated, truncated, info = env.step(a)
+        trace.append((obs.copy(), reward, terminated, truncated, info["success"], info["base_reward"]))
+        if terminated or truncated:
+            break
+    return trace
+
+
+@pytest.mark.parametrize(("task_id", "variant"), SHAPED)
+def test_gymnasium_env_checker_passes(task_id, variant):
+    # gymnasium.utils.env_checker.check_env: gymnasium's own API conformance checks
+    env = gym.make(task_id, shaping=variant, gamma=0.99).unwrapped if variant == "none" else \
+        gym.make(task_id, shaping=variant, gamma=0.99)
+    with warnings.catch_warnings():
+        warnings.simplefilter("error")
+        warnings.filterwarnings("ignore", message=".*is different from the unwrapped version.*")
+        warnings.filterwarnings("ignore", message=".*we recommend using a symmetric and normalized space.*")
+        if task_id == "qlab/LinearQuadratic-v0":  # its state is unbounded by design
+            warnings.filterwarnings("ignore", message=".*infinity. This is probably too.*")
+        check_env(env, skip_render_check=True)
+
+
+@pytest.mark.parametrize("task_id", list(TASK_IDS))
+def test_unknown_or_inapplicable_shaping_is_refused(task_id):
+    with pytest.raises(ValueError, match="shaping must be one of"):
+        gym.make(task_id, shaping="bonus")
+    if task_id == "qlab/LinearQuadratic-v0":
+        with pytest.raises(ValueError, match=r"\['none'\]"):
+            gym.make(task_id, shaping="potential")
+
+
+@pytest.mark.parametrize("task_id", list(TASK_IDS))
+@given(data=st.data(), seed=st.integers(0, 2**31 - 1), actions=st.lists(st.integers(0, 1000), max_size=80))
+def test_observations_inside_space_and_seeded(task_id, data, seed, actions):
+    params = data.draw(PARAMS[task_id])
+    env = gym.make(task_id, **params).unwrapped
+    first = rollout(env, seed, actions)
+    for step in first:
+        assert np.all(np.isfinite(step[0]))
+        assert env.observation_space.contains(step[0])
+    second = rollout(env, seed, actions)
+    assert len(first) == len(second)
+    for a, b in zip(first, second, strict=True):
+        np.testing.assert_array_equal(a[0], b[0])
+        assert a[1:] == b[1:]
+
+
+@pytest.mark.parametrize("task_id", list(TASK_IDS))
+@given(data=st.data(), seed=st.integers(0, 2**31 - 1), n=st.integers(1, 6))
+def test_batched_step_equals_single_steps(task_id, data, seed, n):
+    params = data.draw(PARAMS[task_id])
+    params = {k: v for k, v in params.items() if "noise" not in k}  # noise draws differ in order
+    task = gym.make(task_id, **params).unwrapped
+    batch = TaskBatch(task, n, seed=seed)
+    rng = np.random.default_rng(seed)
+    singles = [gym.make(task_id, **params).unwrapped for _ in range(n)]
+    for env, state in zip(singles, batch.state, strict=True):
+        env.reset(seed=0)
+        env.set_state(state)
+    for _ in range(15):
+        if batch.done.any():
+            break
+        if isinstance(task.action_space, gym.spaces.Discrete):
+            actions = rng.integers(0, task.action_space.n, size=n)
+        else:
+            actions = rng.uniform(task.action_space.low, task.action_space.high, size=(n, *task.action_space.shape))
+        step = batch.step(actions)
+        for i, env in enumerate(singles):
+            obs, reward, terminated, truncated, info = env.step(actions[i])
+            np.testing.assert_allclose(step.next_obs[i], obs, rtol=1e-6, atol=1e-9)  # float32 obs; BLAS order
+            assert step.base_reward[i] == pytest.approx(reward, rel=1e-12, abs=1e-15)
+            assert (step.terminated[i], step.truncated[i], step.success[i]) == (terminated, truncated, info["success"])
+
+
+def shaped_episode(task_id: str, gamma: float, seed: int, policy_seed: int, **params) -> tuple:
+    """Shaped and base discounted returns of one episode, with Phi at its first and last observations."""
+    env = gym.make(task_id, shaping="potential", gamma=gamma, **params)
+    task = env.unwrapped
+    rng = np.random.default_rng(policy_seed)
+    obs, _ = env.reset(seed=seed)
+    phi0 = task.potential(obs[None])[0]
+    shaped, base = [], []
+    done = False
+    while not done:
+        obs, reward, terminated, truncated, info = env.step(int(rng.integers(task.action_space.n)))
+        shaped.append(reward)
+        base.append(info["base_reward"])
+        done = terminated or truncated
+    return (discounted_return(np.array(shaped), gamma), discounted_return(np.array(base), gamma), phi0,
+            task.potential(obs[None])[0], len(shaped), terminated)
+
+
+@pytest.mark.parametrize("task_id", ["qlab/Dock-v0", "qlab/Crane-v0", "qlab/Kiln-v0"])
+def test_potential_shaping_telescopes(task_id):
+    # Ng, Harada & Russell (1999): sum_t gamma^t F_t = gamma^T Phi(s_T) - Phi(s_0), Phi(s_T) = 0 if terminal
+    gamma = 0.97
+    seen = set()
+    for seed in range(40):
+        params = {"max_steps": 30} if task_id != "qlab/Kiln-v0" else {}
+        if task_id == "qlab/Dock-v0":
+            params["start_distance_m"] = (3.0, 6.0)
+        g_shaped, g_base, phi0, phi_end, steps, terminated = shaped_episode(task_id, gamma, seed, seed, **params)
+        tail = 0.0 if terminated else gamma**steps * phi_end
+        assert g_shaped == pytest.approx(g_base - phi0 + tail, abs=1e-9)
+        seen.add(bool(terminated))
+    assert seen == {True, False} or task_id == "qlab/Kiln-v0"  # both endings were exercised
+
+
+def test_info_base_reward_is_the_tasks_own_under_every_variant():
+    rewards = {}
+    for variant in ("none", "potential", "progress"):
+        env = gym.make("qlab/Dock-v0", shaping=variant, start_distance_m=(3.0, 6.0))
+        env.reset(seed=5)
+        rewards[variant] = [env.step(4)[4]["base_reward"] for _ in range(5)]
+    assert rewards["none"] == rewards["potential"] == rewards["progress"]
