@@ -29,12 +29,13 @@ import qlab  # noqa: F401  (registers the tasks)
 from qlab.learners.protocol import Transitions
 from qlab.learners.qnet import QNetConfig, QNetLearner
 from qlab.learners.replay import ReplayBuffer
+from qlab.learners.schedules import ScheduleConfig
 from qlab.tasks.batch import TaskBatch
 
 CONFIG = QNetConfig(
     hidden_sizes=[64, 64], gamma=0.99, learning_rate=1e-3, batch_size=64, replay_capacity=50_000,
     warmup_steps=500, update_every=1, target_update_every=250, loss="huber", double_q=False, n_step=1,
-    epsilon_kind="linear", epsilon_start=1.0, epsilon_end=0.1, epsilon_horizon=2_000.0, max_grad_norm=10.0,
+    epsilon=ScheduleConfig("linear", 1.0, 0.1, 2_000.0), max_grad_norm=10.0,
 )
 
 
@@ -68,7 +69,7 @@ def _bare_loop(n_steps: int, seed: int) -> tuple[float, int]:
     updates, size = 0, 0
     start = time.perf_counter()
     for t in range(n_steps):
-        eps = max(cfg.epsilon_end, cfg.epsilon_start + (cfg.epsilon_end - cfg.epsilon_start) * t / cfg.epsilon_horizon)
+        eps = max(cfg.epsilon.end, cfg.epsilon.start + (cfg.epsilon.end - cfg.epsilon.start) * t / cfg.epsilon.horizon)
         if rng.random() < eps:
             action = int(rng.integers(n_actions))
         else:

@@ -10,9 +10,10 @@ from gymnasium import spaces
 import qlab  # noqa: F401  (registers the qlab/ gymnasium ids)
 from qlab.checkpoint import load_checkpoint, save_checkpoint
 from qlab.learners import build_learner
-from qlab.learners.linear import LinearConfig, LinearQ, ScheduleConfig
+from qlab.learners.linear import LinearConfig, LinearQ
 from qlab.learners.lstdq import LSTDQ, LSTDQConfig
 from qlab.learners.protocol import Transitions
+from qlab.learners.schedules import ScheduleConfig
 from qlab.reference import lq_solution, value_iteration
 
 N_STATES, N_ACTIONS, GAMMA = 5, 2, 0.5

@@ -14,6 +14,7 @@ import qlab  # noqa: F401  (registers the qlab tasks)
 from qlab.checkpoint import load_checkpoint, save_checkpoint
 from qlab.learners.protocol import Learner, Transitions
 from qlab.learners.qnet import QNetConfig, QNetLearner, bootstrap_values
+from qlab.learners.schedules import ScheduleConfig
 from qlab.reference import lq_solution, value_iteration
 
 # --- max vs double estimator (van Hasselt 2010) ------------------------------------------------
@@ -78,7 +79,7 @@ def test_q_converges_to_value_iteration_on_a_finite_mdp():
     q_star = value_iteration(P, R, gamma)  # exact Q* (qlab.reference, checked there against Sutton & Barto)
     cfg = QNetConfig(hidden_sizes=[32], gamma=gamma, learning_rate=3e-3, batch_size=64, replay_capacity=20_000,
                      warmup_steps=256, update_every=16, target_update_every=50, loss="squared", double_q=True,
-                     epsilon_start=0.0, epsilon_end=0.0)
+                     epsilon=ScheduleConfig("constant", 0.0))
     learner = QNetLearner(spaces.Box(0.0, 1.0, (n_states,)), spaces.Discrete(2), cfg, seed=0)
     rng = np.random.default_rng(0)
     one_hot = np.eye(n_states, dtype=np.float32)
@@ -106,7 +107,7 @@ def test_greedy_action_follows_the_lq_gain():
     K, _ = lq_solution(A, B, Q, R, gamma)  # discounted Riccati solution (qlab.reference.lq, checked there)
     cfg = QNetConfig(hidden_sizes=[64, 64], gamma=gamma, learning_rate=1e-3, batch_size=128, replay_capacity=50_000,
                      warmup_steps=512, update_every=16, target_update_every=100, loss="squared", double_q=True,
-                     epsilon_start=0.0, epsilon_end=0.0)
+                     epsilon=ScheduleConfig("constant", 0.0))
     learner = QNetLearner(env.observation_space, env.action_space, cfg, seed=0)
     rng = np.random.default_rng(0)
     for _ in range(2500):  # states uniform on [-2, 2], actions uniform on the grid: the task's own physics
@@ -127,7 +128,7 @@ def test_greedy_action_follows_the_lq_gain():
 
 RESUME_CFG = QNetConfig(hidden_sizes=[16, 16], gamma=0.95, learning_rate=1e-3, batch_size=16, replay_capacity=500,
                         warmup_steps=40, update_every=2, target_update_every=10, n_step=3, double_q=True,
-                        epsilon_kind="linear", epsilon_start=1.0, epsilon_end=0.1, epsilon_horizon=150.0)
+                        epsilon=ScheduleConfig("linear", 1.0, 0.1, 150.0))
 
 
 def _make_env() -> gym.Env:
@@ -283,9 +284,9 @@ def test_nonfinite_loss_is_flagged_and_the_update_skipped():
         ({"gamma": 1.2}, "gamma"),
         ({"learning_rate": 0.0}, "learning_rate"),
         ({"huber_delta": 0.0}, "huber_delta"),
-        ({"epsilon_kind": "cosine"}, "epsilon_kind"),
-        ({"epsilon_start": 2.0}, "epsilon_start"),
-        ({"epsilon_horizon": 0.0}, "epsilon_horizon"),
+        ({"epsilon": ScheduleConfig("cosine")}, "epsilon: schedule kind"),
+        ({"epsilon": ScheduleConfig("linear", 2.0)}, "epsilon.start"),
+        ({"epsilon": ScheduleConfig("linear", 1.0, horizon=0.0)}, "epsilon: schedule horizon"),
         ({"max_grad_norm": -1.0}, "max_grad_norm"),
         ({"torch_threads": 0}, "torch_threads"),
     ],

@@ -8,8 +8,8 @@ from gymnasium import spaces
 
 from qlab.checkpoint import load_checkpoint, save_checkpoint
 from qlab.learners import build_learner
-from qlab.learners.linear import ScheduleConfig
 from qlab.learners.protocol import Transitions
+from qlab.learners.schedules import ScheduleConfig
 from qlab.learners.tabular import TabularConfig, TabularQ
 from qlab.reference import value_iteration
 

@@ -32,8 +32,9 @@ import numpy as np
 from gymnasium import spaces
 
 from qlab.features import FeatureConfig, FeatureMap, QuadraticFeatures, build_features, observation_dim, rows_to_csr
-from qlab.learners.linear import ScheduleConfig, check_epsilon, check_gamma, epsilon_greedy, restore_array, rng_state
+from qlab.learners.linear import check_gamma, epsilon_greedy, restore_array, rng_state
 from qlab.learners.protocol import Transitions
+from qlab.learners.schedules import ScheduleConfig, check_epsilon
 
 
 @dataclass

@@ -30,7 +30,7 @@ from torch import nn
 
 from qlab.learners.protocol import Transitions
 from qlab.learners.replay import ReplayBuffer
-from qlab.learners.schedules import SCHEDULE_KINDS, Schedule
+from qlab.learners.schedules import ScheduleConfig, check_epsilon
 
 LOSSES = ("squared", "huber")
 WEIGHT_PENALTIES = ("none", "l2", "l1")
@@ -74,10 +74,7 @@ class QNetConfig:
     penalty_coef: float = 0.0
     double_q: bool = True
     n_step: int = 1
-    epsilon_kind: str = "linear"  # a qlab.learners.schedules kind, over env steps
-    epsilon_start: float = 1.0
-    epsilon_end: float = 0.05
-    epsilon_horizon: float = 10_000.0
+    epsilon: ScheduleConfig = field(default_factory=lambda: ScheduleConfig("linear", 1.0, 0.05, 10_000.0))  # env steps
     max_grad_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
 
@@ -104,20 +101,11 @@ class QNetConfig:
         if not (np.isfinite(self.penalty_coef) and self.penalty_coef >= 0):
             raise ValueError(f"penalty_coef must be a finite number >= 0, got {self.penalty_coef!r}")
         _require_int("n_step", self.n_step, 1)
-        _require_choice("epsilon_kind", self.epsilon_kind, SCHEDULE_KINDS)
-        _require_within("epsilon_start", self.epsilon_start, 0.0, 1.0)
-        _require_within("epsilon_end", self.epsilon_end, 0.0, 1.0)
-        if not (np.isfinite(self.epsilon_horizon) and self.epsilon_horizon > 0):
-            raise ValueError(f"epsilon_horizon must be a finite number > 0, got {self.epsilon_horizon!r}")
+        check_epsilon("epsilon", self.epsilon)
         if not (np.isfinite(self.max_grad_norm) and self.max_grad_norm >= 0):
             raise ValueError(f"max_grad_norm must be a finite number >= 0 (0 disables), got {self.max_grad_norm!r}")
         _require_int("torch_threads", self.torch_threads, 1)
 
-    def epsilon(self) -> Schedule:
-        """The exploration schedule described by the ``epsilon_*`` fields."""
-        return Schedule(
-            kind=self.epsilon_kind, start=self.epsilon_start, end=self.epsilon_end, horizon=self.epsilon_horizon
-        )
 
 
 def bootstrap_values(q_online_next: torch.Tensor, q_target_next: torch.Tensor, double: bool) -> torch.Tensor:
@@ -166,7 +154,7 @@ class QNetLearner:
         torch.set_num_threads(config.torch_threads)
         self.obs_dim = int(observation_space.shape[0])
         self.n_actions = int(action_space.n)
-        self.epsilon = config.epsilon()
+        self.epsilon = check_epsilon("epsilon", config.epsilon)
         self.rng = np.random.default_rng(seed)
         self.torch_generator = torch.Generator().manual_seed(int(seed))
         self.online = _mlp(self.obs_dim, config.hidden_sizes, self.n_actions, self.torch_generator)

@@ -46,3 +46,29 @@ class Schedule:
         else:
             out = self.start / (n + 1.0) ** self.power
         return float(out) if out.ndim == 0 else out
+
+
+@dataclass
+class ScheduleConfig:
+    """The plain fields of a :class:`~qlab.learners.schedules.Schedule` (mutable, so it nests in hydra configs)."""
+
+    kind: str = "constant"  # "constant" | "linear" | "exponential" | "polynomial"
+    start: float = 0.1
+    end: float = 0.0
+    horizon: float = 1.0
+    power: float = 1.0
+
+    def build(self, name: str) -> Schedule:
+        """The schedule; a bad field raises ``ValueError`` prefixed with ``name``."""
+        try:
+            return Schedule(str(self.kind), float(self.start), float(self.end), float(self.horizon), float(self.power))
+        except ValueError as err:
+            raise ValueError(f"{name}: {err}") from err
+
+
+def check_epsilon(name: str, settings: ScheduleConfig) -> Schedule:
+    """Build an exploration-rate schedule whose start and end lie in [0, 1]."""
+    schedule = settings.build(name)
+    if not (0.0 <= settings.start <= 1.0 and 0.0 <= settings.end <= 1.0):
+        raise ValueError(f"{name}.start and {name}.end must lie in [0, 1], got {settings.start!r}, {settings.end!r}")
+    return schedule
