@@ -12,6 +12,7 @@ runs again: finished ones are skipped, interrupted ones resume from their checkp
 
 from __future__ import annotations
 
+import hashlib
 import re
 from pathlib import Path
 
@@ -22,6 +23,7 @@ from omegaconf import DictConfig
 
 from qlab.config import CONFIG_DIR, register_configs
 
+MAX_NAME = 200
 #: overrides that choose where a run is stored or how it is executed, not what it computes
 NOT_IN_RUN_NAME = ("study", "study_name", "results_dir", "tensorboard", "torch_threads", "hydra")
 
@@ -30,8 +32,10 @@ def run_name(overrides: list[str]) -> str:
     """Folder name of a run: its sorted overrides, minus storage and execution settings."""
     kept = sorted(o.lstrip("+~") for o in overrides if o.lstrip("+~").split("=")[0].split(".")[0]
                   not in NOT_IN_RUN_NAME)
-    name = ",".join(kept) or "defaults"
-    return re.sub(r"[^A-Za-z0-9=,._+\-]", "_", name)
+    name = re.sub(r"[^A-Za-z0-9=,._+\-]", "_", ",".join(kept) or "defaults")
+    if len(name) > MAX_NAME:  # file systems cap names at 255 bytes: keep a readable head, add a digest
+        name = f"{name[: MAX_NAME - 17]}..{hashlib.sha256(name.encode()).hexdigest()[:15]}"
+    return name
 
 
 register_configs()
@@ -43,7 +47,10 @@ def _app(cfg: DictConfig) -> dict:
 
     hc = HydraConfig.get()
     run_dir = Path(cfg.results_dir) / cfg.study_name / run_name(list(hc.overrides.task))
-    return run_experiment(cfg, run_dir, bar=hc.mode != RunMode.MULTIRUN)
+    try:
+        return run_experiment(cfg, run_dir, bar=hc.mode != RunMode.MULTIRUN)
+    except ValueError as err:  # a setting no schema could catch: report it plainly, no traceback
+        raise SystemExit(f"qlab-run: invalid setting: {err}") from None
 
 
 def run() -> None:

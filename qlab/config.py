@@ -1,7 +1,8 @@
 """Structured configs (dataclasses) behind the hydra app, so a typo fails before any work.
 
-Schemas are registered with hydra's ConfigStore as ``<group>/schema_<name>``; the YAML files
-in ``configs/<group>/<name>.yaml`` extend them. Task and learner schemas are derived from the
+Schemas are registered with hydra's ConfigStore as ``schema/<group>/<name>`` (kept out of the
+choosable groups, so error messages list only real options); ``configs/<group>/<name>.yaml``
+extends its schema. Task and learner schemas are derived from the
 task constructors and the learners' own config dataclasses, so there is a single source of
 truth for every setting.
 """
@@ -40,6 +41,9 @@ class ShapingConfig:
 
     variant: str = "none"
     progress_scale: Optional[float] = None  # noqa: UP045 (omegaconf needs typing.Optional)
+    # Start Q at the task's potential Phi instead of shaping (Wiewiora 2003): the control arm for
+    # ``potential``; tabular and linear learners only.
+    start_at_potential: bool = False
 
 
 @dataclass
@@ -133,10 +137,10 @@ def register_configs() -> ConfigStore:
     cs.store(name="schema_run", node=RunConfig)
     for option, (env_id, target) in TASKS.items():
         head = [("id", str, field(default=env_id))]
-        cs.store(group="task", name=f"schema_{option}", node=signature_schema(f"{option}_task", target, head))
-    cs.store(group="task", name="schema_gym", node=GymTaskConfig)
+        cs.store(group="schema/task", name=option, node=signature_schema(f"{option}_task", target, head))
+    cs.store(group="schema/task", name="gym", node=GymTaskConfig)
     for kind in LEARNERS:
-        cs.store(group="learner", name=f"schema_{kind}", node=learner_schema(kind))
+        cs.store(group="schema/learner", name=kind, node=learner_schema(kind))
     return cs
 
 

@@ -14,6 +14,7 @@ import shutil
 import sys
 import time
 from collections import defaultdict
+from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
@@ -22,9 +23,9 @@ import gymnasium as gym
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
-from qlab.checkpoint import load_checkpoint, save_checkpoint
+from qlab.checkpoint import has_checkpoint, load_checkpoint, save_checkpoint
 from qlab.config import to_container, validate
-from qlab.learners import Learner, Transitions, build_learner
+from qlab.learners import LEARNERS, Learner, Transitions, build_learner, load_target
 from qlab.recording import MARKER, SUMMARY, Recorder, atomic_write_json, atomic_write_text
 from qlab.shaping import ShapedReward
 
@@ -41,9 +42,14 @@ class LoopState:
     last_eval: int = -1
 
 
+#: settings that say where a run is stored, not what it computes (left out of the config hash)
+STORAGE_KEYS = ("results_dir", "study_name")
+
+
 def config_hash(cfg: DictConfig) -> str:
-    """Short hash of the resolved config (decides whether a finished run may be skipped)."""
-    return hashlib.sha256(OmegaConf.to_yaml(cfg, resolve=True).encode()).hexdigest()[:16]
+    """Short hash of the resolved config minus storage keys (decides whether a finished run may be skipped)."""
+    tree = {k: v for k, v in to_container(cfg).items() if k not in STORAGE_KEYS}
+    return hashlib.sha256(json.dumps(tree, sort_keys=True).encode()).hexdigest()[:16]
 
 
 def episode_seed(run_seed: int, episode: int) -> int:
@@ -63,23 +69,30 @@ def make_env(task: DictConfig, shaping_variant: str, gamma: float, progress_scal
 
 
 def evaluate(learner: Learner, env: gym.Env, start_seeds: list[int], gamma: float) -> dict[str, float]:
-    """Greedy episodes on the task's own reward from fixed seeded start states."""
-    success, disc, undisc, length, q_start = [], [], [], [], []
+    """Greedy episodes from fixed seeded start states, scored on the task's own reward.
+
+    ``env`` is the training env (shaping included): the scores use ``info["base_reward"]``, and
+    ``trained_discounted_return`` is the same episodes' return on the training reward, the number
+    the learner's ``q_start`` (its predicted value of the start state) estimates.
+    """
+    success, disc, undisc, length, q_start, trained = [], [], [], [], [], []
     for s in start_seeds:
         obs, _ = env.reset(seed=s)
         q_start.append(float(learner.value(np.asarray(obs, dtype=np.float32)[None])[0]))
-        done, t, g, total, ok = False, 0, 0.0, 0.0, False
+        done, t, g, g_trained, total, ok = False, 0, 0.0, 0.0, 0.0, False
         while not done:
             action = learner.greedy(np.asarray(obs, dtype=np.float32)[None])[0]
             obs, reward, terminated, truncated, info = env.step(action)
             base = float(info.get("base_reward", reward))
             g += gamma**t * base
+            g_trained += gamma**t * float(reward)
             total += base
             ok = bool(info.get("success", False))
             t += 1
             done = terminated or truncated
         success.append(ok)
         disc.append(g)
+        trained.append(g_trained)
         undisc.append(total)
         length.append(t)
     return {
@@ -88,7 +101,19 @@ def evaluate(learner: Learner, env: gym.Env, start_seeds: list[int], gamma: floa
         "return": float(np.mean(undisc)),
         "length": float(np.mean(length)),
         "q_start": float(np.mean(q_start)),
+        "trained_discounted_return": float(np.mean(trained)),
     }
+
+
+def start_at_potential(learner: Learner, kind: str, env: gym.Env) -> None:
+    """Set Q(s, a) = Phi(s) before learning (Wiewiora 2003), for learners that support it."""
+    supported = sorted(k for k, (target, _) in LEARNERS.items() if hasattr(load_target(target), "initialise_from"))
+    if not hasattr(learner, "initialise_from"):
+        raise ValueError(f"shaping.start_at_potential needs a learner in {supported}, got learner {kind!r}")
+    task = env.unwrapped
+    if not hasattr(task, "potential"):
+        raise ValueError(f"shaping.start_at_potential needs a task with a potential, got {type(task).__name__}")
+    learner.initialise_from(task.potential)
 
 
 class Progress:
@@ -127,13 +152,42 @@ def _prepare_folder(run_dir: Path, digest: str) -> dict[str, Any] | None:
     return None
 
 
-def run_experiment(cfg: DictConfig, run_dir: Path, bar: bool = True, stop_after_checkpoints: int | None = None) -> dict:
+def build_run(cfg: DictConfig) -> tuple[gym.Env, gym.Env, Learner]:
+    """Training env, evaluation env and learner of a config; a bad setting raises ``ValueError``
+    prefixed with its config group (``task:``, ``shaping:``, ``learner:``) before any work."""
+    import torch
+
+    torch.set_num_threads(cfg.torch_threads)
+    try:
+        make_env(cfg.task, "none", cfg.gamma, None)
+    except ValueError as err:
+        raise ValueError(f"task ({cfg.task.id}): {err}") from err
+    try:
+        env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
+        eval_env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
+    except ValueError as err:
+        raise ValueError(f"shaping: {err}") from err
+    settings = to_container(cfg.learner)
+    kind = settings.pop("kind")
+    try:
+        learner = build_learner(kind, settings, env.observation_space, env.action_space, cfg.seed)
+    except ValueError as err:
+        raise ValueError(f"learner ({kind}): {err}") from err
+    if cfg.shaping.start_at_potential:
+        start_at_potential(learner, kind, env)
+    return env, eval_env, learner
+
+
+def run_experiment(
+    cfg: DictConfig, run_dir: Path, bar: bool = True, on_checkpoint: Callable[[int], None] | None = None
+) -> dict:
     """Train and evaluate one configuration in ``run_dir``; resume or skip as the folder allows.
 
-    ``stop_after_checkpoints`` (for tests of resumption) stops the process abruptly after that
-    many checkpoints have been written in this call, as a kill would.
+    ``on_checkpoint(n)`` is called after the n-th checkpoint of this call is on disk (the tests
+    use it to kill the process at a chosen checkpoint).
     """
     validate(cfg)
+    env, eval_env, learner = build_run(cfg)
     run_dir = Path(run_dir)
     digest = config_hash(cfg)
     finished = _prepare_folder(run_dir, digest)
@@ -144,24 +198,16 @@ def run_experiment(cfg: DictConfig, run_dir: Path, bar: bool = True, stop_after_
     config_yaml = OmegaConf.to_yaml(cfg, resolve=True)
     atomic_write_text(run_dir / "config.yaml", config_yaml)
     atomic_write_text(run_dir / "config.hash", digest + "\n")
-
-    import torch
-
-    torch.set_num_threads(cfg.torch_threads)
-    env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
-    eval_env = make_env(cfg.task, "none", cfg.gamma, None)
-    settings = to_container(cfg.learner)
-    kind = settings.pop("kind")
-    learner = build_learner(kind, settings, env.observation_space, env.action_space, cfg.seed)
     start_seeds = [cfg.evaluation.start_seed + i for i in range(cfg.evaluation.episodes)]
 
     loop = LoopState()
-    if (run_dir / CHECKPOINT).exists():
+    if has_checkpoint(run_dir / CHECKPOINT):
         saved = load_checkpoint(run_dir / CHECKPOINT)
         learner.load_state_dict(saved["learner"])
         loop = LoopState(**saved["loop"])
     recorder = Recorder(run_dir, resume_step=loop.step, tensorboard=cfg.tensorboard)
-    progress = Progress(run_dir.name, cfg.budget_steps, bar)
+    budget, gamma = int(cfg.budget_steps), float(cfg.gamma)  # plain numbers: config lookups are slow in the loop
+    progress = Progress(run_dir.name, budget, bar)
     if loop.step == 0:
         recorder.text("config", config_yaml)
     checkpoints = 0
@@ -172,13 +218,11 @@ def run_experiment(cfg: DictConfig, run_dir: Path, bar: bool = True, stop_after_
         recorder.commit()
         save_checkpoint(run_dir / CHECKPOINT, {"learner": learner.state_dict(), "loop": dataclasses.asdict(loop)})
         checkpoints += 1
-        if stop_after_checkpoints is not None and checkpoints >= stop_after_checkpoints:
-            import os
-
-            os._exit(99)  # abrupt stop, as a kill would: nothing after the checkpoint is flushed
+        if on_checkpoint is not None:
+            on_checkpoint(checkpoints)
 
     def run_eval() -> dict[str, float]:
-        result = evaluate(learner, eval_env, start_seeds, cfg.gamma)
+        result = evaluate(learner, eval_env, start_seeds, gamma)
         recorder.scalars(result, loop.step, "eval/")
         loop.last_eval = loop.step
         loop.next_eval = loop.step + cfg.evaluation.every_steps
@@ -187,18 +231,18 @@ def run_experiment(cfg: DictConfig, run_dir: Path, bar: bool = True, stop_after_
     try:
         if loop.step == 0 and loop.last_eval < 0:
             run_eval()
-        while loop.step < cfg.budget_steps and status == "finished":
+        while loop.step < budget and status == "finished":
             obs, _ = env.reset(seed=episode_seed(cfg.seed, loop.episode))
             tick = time.perf_counter()
             learned: dict[str, list[float]] = defaultdict(list)
             t, train_return, base_return, complete, ok = 0, 0.0, 0.0, False, False
-            while loop.step < cfg.budget_steps:
+            while loop.step < budget:
                 action = learner.act(np.asarray(obs, dtype=np.float32))
                 next_obs, reward, terminated, truncated, info = env.step(action)
                 metrics = learner.learn(Transitions.single(obs, action, reward, next_obs, terminated, truncated))
                 loop.step += 1
-                train_return += cfg.gamma**t * float(reward)
-                base_return += cfg.gamma**t * float(info.get("base_reward", reward))
+                train_return += gamma**t * float(reward)
+                base_return += gamma**t * float(info.get("base_reward", reward))
                 ok = bool(info.get("success", False))
                 t += 1
                 for name, value in metrics.items():

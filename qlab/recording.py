@@ -62,7 +62,8 @@ class Recorder:
 
     Rows live in memory and reach ``metrics.csv`` at each :meth:`commit` (called with every
     checkpoint), so the table on disk always matches the last checkpoint. On resume the table
-    is reloaded up to the checkpoint's step and tensorboard purges events after that step.
+    is reloaded up to the checkpoint's step and tensorboard purges events after that step
+    (``purge_step = step + 1``: rows at the checkpoint's own step were committed with it).
     """
 
     def __init__(self, run_dir: Path, resume_step: int = 0, tensorboard: bool = True):
@@ -72,7 +73,7 @@ class Recorder:
         if tensorboard:
             from torch.utils.tensorboard import SummaryWriter
 
-            self.writer = SummaryWriter(str(self.run_dir / "tb"), purge_step=resume_step or None)
+            self.writer = SummaryWriter(str(self.run_dir / "tb"), purge_step=resume_step + 1 if resume_step else None)
 
     def scalar(self, tag: str, value: float, step: int) -> None:
         """Record one scalar at an environment step."""

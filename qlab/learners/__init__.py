@@ -21,7 +21,8 @@ LEARNERS: dict[str, tuple[str, str]] = {
 }
 
 
-def _load(target: str) -> Any:
+def load_target(target: str) -> Any:
+    """The object named by ``module:attribute``."""
     module, attr = target.split(":")
     return getattr(importlib.import_module(module), attr)
 
@@ -34,7 +35,7 @@ def _entry(kind: str) -> tuple[str, str]:
 
 def learner_config_class(kind: str) -> type:
     """The config dataclass of learner ``kind``."""
-    return _load(_entry(kind)[1])
+    return load_target(_entry(kind)[1])
 
 
 def build_learner(
@@ -43,9 +44,9 @@ def build_learner(
     """Construct learner ``kind`` from a plain dict of its config fields."""
     from omegaconf import OmegaConf
 
-    cls, config_cls = (_load(t) for t in _entry(kind))
+    cls, config_cls = (load_target(t) for t in _entry(kind))
     config = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(config_cls), settings))
     return cls(observation_space, action_space, config, seed)
 
 
-__all__ = ["LEARNERS", "Learner", "Transitions", "build_learner", "learner_config_class"]
+__all__ = ["LEARNERS", "Learner", "Transitions", "build_learner", "learner_config_class", "load_target"]

@@ -1,0 +1,239 @@
+"""The hydra app from the shell: config errors, sweeps, recording, resume, launchers, divergence.
+
+Runs here are tiny (Dock with a short start distance, a few thousand steps) so the whole file
+stays quick; each shell test starts ``qlab-run`` as a subprocess, exactly as a user would.
+"""
+
+from __future__ import annotations
+
+import csv
+import json
+import subprocess
+import sys
+import textwrap
+from collections import Counter
+from pathlib import Path
+
+import pytest
+from hydra import compose, initialize_config_dir
+from hydra.errors import ConfigCompositionException
+from omegaconf import OmegaConf
+from omegaconf.errors import ConfigAttributeError, ValidationError
+
+from qlab.config import CONFIG_DIR, register_configs, validate
+from qlab.experiment import build_run, config_hash
+from qlab.recording import read_metrics
+
+QLAB_RUN = str(Path(sys.executable).parent / "qlab-run")
+TINY = [
+    "task.start_distance_m=[8.0,12.0]",
+    "task.max_steps=100",
+    "budget_steps=1500",
+    "evaluation.every_steps=500",
+    "evaluation.episodes=3",
+    "checkpoint_every_episodes=2",
+]
+
+
+def compose_run(overrides: list[str]):
+    register_configs()
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        return compose(config_name="config", overrides=overrides)
+
+
+def shell(args: list[str], cwd: Path, check: bool = True) -> subprocess.CompletedProcess:
+    done = subprocess.run([QLAB_RUN, *args], cwd=cwd, capture_output=True, text=True, timeout=600)
+    if check and done.returncode != 0:
+        raise AssertionError(f"qlab-run {args} failed ({done.returncode}):\n{done.stdout}\n{done.stderr}")
+    return done
+
+
+def tensorboard_scalars(run_dir: Path) -> list[tuple[int, str, float]]:
+    """Scalars as tensorboard's own reader sees them (purged events dropped)."""
+    from tensorboard.backend.event_processing.event_accumulator import EventAccumulator
+
+    acc = EventAccumulator(str(run_dir / "tb"), size_guidance={"scalars": 0})
+    acc.Reload()
+    return [(e.step, tag, e.value) for tag in acc.Tags()["scalars"] for e in acc.Scalars(tag)]
+
+
+def measured(run_dir: Path) -> list[tuple[int, str, float]]:
+    """Metrics rows minus wall-clock speed, which no two runs share."""
+    return [row for row in read_metrics(run_dir) if not row[1].startswith("speed/")]
+
+
+def assert_tensorboard_matches_csv(run_dir: Path) -> None:
+    table = read_metrics(run_dir)
+    board = tensorboard_scalars(run_dir)
+    assert Counter((s, t) for s, t, _ in board) == Counter((s, t) for s, t, _ in table)
+    by_key = {(s, t): v for s, t, v in table}
+    for step, tag, value in board:  # tensorboard stores float32
+        assert value == pytest.approx(by_key[(step, tag)], rel=1e-6, abs=1e-6)
+
+
+# --- config errors -------------------------------------------------------------------------
+
+
+def test_unknown_group_option_lists_the_valid_ones():
+    with pytest.raises(ConfigCompositionException) as err:
+        compose_run(["learner=tabulr"])
+    message = str(err.value.__cause__ or err.value)
+    assert "tabulr" in message
+    for option in ("linear", "lstdq", "qnet", "tabular"):
+        assert option in message
+    assert "schema/" not in message and "schema_" not in message  # schemas are kept out of the options
+
+
+def test_wrong_type_names_the_key():
+    with pytest.raises(ConfigCompositionException) as err:
+        compose_run(["budget_steps=lots"])
+    message = str(err.value.__cause__)
+    assert "budget_steps" in message and "lots" in message
+
+
+def test_unknown_key_names_the_key():
+    with pytest.raises(ConfigCompositionException) as err:
+        compose_run(["learner.step_sise.start=0.5"])
+    message = str(err.value.__cause__)
+    assert "step_sise" in message
+
+
+def test_unknown_key_in_a_structured_node_is_refused():
+    cfg = compose_run([])
+    with pytest.raises((ConfigAttributeError, ValidationError)):
+        OmegaConf.update(cfg, "task.mass_kgs", 5.0, merge=True)
+
+
+def test_negative_budget_is_refused_before_any_work():
+    cfg = compose_run(["budget_steps=-100"])
+    with pytest.raises(ValueError, match="budget_steps must be a positive integer, got -100"):
+        validate(cfg)
+
+
+def test_bad_physical_parameter_names_group_and_parameter():
+    cfg = compose_run(["task.mass_kg=0"])
+    with pytest.raises(ValueError, match=r"task \(qlab/Dock-v0\): mass_kg must be"):
+        build_run(cfg)
+
+
+def test_invalid_setting_from_the_shell_fails_plainly(tmp_path):
+    done = shell(["learner=qnet", "learner.batch_size=0", f"results_dir={tmp_path}"], tmp_path, check=False)
+    assert done.returncode != 0
+    assert "invalid setting: learner (qnet): batch_size must be an integer >= 1, got 0" in done.stderr
+    assert "Traceback" not in done.stderr
+    assert not any(p.name != ".hydra" for p in (tmp_path / "scratch").glob("*"))  # nothing was run
+
+
+def test_config_hash_ignores_storage_but_not_settings():
+    base = compose_run([])
+    assert config_hash(base) == config_hash(compose_run(["results_dir=elsewhere", "study_name=other"]))
+    assert config_hash(base) != config_hash(compose_run(["seed=1"]))
+
+
+# --- sweeps and recording ------------------------------------------------------------------
+
+
+def test_two_run_sweep_writes_folders_and_tensorboard_matches_csv(tmp_path):
+    shell(["-m", "seed=0,1", "study_name=pair", f"results_dir={tmp_path}", *TINY], tmp_path)
+    runs = sorted(p for p in (tmp_path / "pair").iterdir() if not p.name.startswith("."))
+    assert sorted(next(o for o in p.name.split(",") if o.startswith("seed=")) for p in runs) == ["seed=0", "seed=1"]
+    for run in runs:
+        for name in ("config.yaml", "config.hash", "metrics.csv", "summary.json", "FINISHED"):
+            assert (run / name).is_file(), name
+        assert (run / "checkpoint").is_dir()
+        summary = json.loads((run / "summary.json").read_text())
+        assert summary["status"] == "finished" and summary["steps"] == 1500
+        tags = {t for _, t, _ in read_metrics(run)}
+        assert {"eval/success_rate", "eval/discounted_return", "eval/return", "eval/length"} <= tags
+        assert any(t.startswith("episode/") for t in tags) and any(t.startswith("learn/") for t in tags)
+        assert_tensorboard_matches_csv(run)
+        assert (run / "tb" / "hparams").is_dir()
+
+
+def test_rerun_skips_finished_and_reruns_changed(tmp_path):
+    args = ["study_name=again", f"results_dir={tmp_path}", *TINY]
+    shell(args, tmp_path)
+    run = next(p for p in (tmp_path / "again").iterdir() if not p.name.startswith("."))
+    first = measured(run)
+    done = shell(args, tmp_path)
+    assert "already finished" in done.stderr
+    assert measured(run) == first
+    (run / "config.hash").write_text("0000\n")  # as if the config behind this folder had changed
+    (run / "FINISHED").write_text("0000\n")
+    done = shell(args, tmp_path)
+    assert "already finished" not in done.stderr
+    assert measured(run) == first  # re-run from scratch, same seed, same numbers
+
+
+# --- resume after a kill -------------------------------------------------------------------
+
+KILLER = textwrap.dedent(
+    """
+    import os, signal, sys
+    from hydra import compose, initialize_config_dir
+    from qlab.config import CONFIG_DIR, register_configs
+    from qlab.experiment import run_experiment
+
+    run_dir, n_kill, sig, *overrides = sys.argv[1:]
+    register_configs()
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        cfg = compose(config_name="config", overrides=overrides)
+
+    def kill(n):
+        if n == int(n_kill):
+            os.kill(os.getpid(), getattr(signal, sig))
+
+    run_experiment(cfg, run_dir, bar=False, on_checkpoint=kill)
+    """
+)
+
+
+def run_script(run_dir: Path, n_kill: int, sig: str, overrides: list[str]) -> int:
+    args = [sys.executable, "-c", KILLER, str(run_dir), str(n_kill), sig, *overrides]
+    return subprocess.run(args, capture_output=True, text=True, timeout=600).returncode
+
+
+@pytest.mark.parametrize(("learner", "sig"), [("tabular", "SIGKILL"), ("qnet", "SIGKILL"), ("tabular", "SIGINT")])
+def test_killed_run_resumes_to_the_uninterrupted_result(tmp_path, learner, sig):
+    overrides = [f"learner={learner}", "learner.warmup_steps=100" if learner == "qnet" else "seed=0", *TINY]
+    whole, killed = tmp_path / "whole", tmp_path / "killed"
+    assert run_script(whole, 0, sig, overrides) == 0
+    assert run_script(killed, 3, sig, overrides) != 0  # stopped just after its 3rd checkpoint
+    assert not (killed / "FINISHED").exists()
+    assert run_script(killed, 0, sig, overrides) == 0  # the same command again resumes and finishes
+    rows = read_metrics(killed)
+    assert len(rows) == len(set((s, t) for s, t, _ in rows))  # nothing recorded twice
+    assert measured(killed) == measured(whole)  # nothing lost, and the resumed run repeats the uninterrupted one
+    assert_tensorboard_matches_csv(killed)
+    summary = json.loads((killed / "summary.json").read_text())
+    assert summary["final"] == json.loads((whole / "summary.json").read_text())["final"]
+
+
+# --- launchers and divergence --------------------------------------------------------------
+
+
+def test_submitit_local_launcher_runs_a_two_job_sweep(tmp_path):
+    shell(["-m", "hydra/launcher=local_submitit", "seed=0,1", "study_name=sub", f"results_dir={tmp_path}", *TINY],
+          tmp_path)
+    runs = sorted(p for p in (tmp_path / "sub").iterdir() if not p.name.startswith("."))
+    assert len(runs) == 2
+    assert all((run / "FINISHED").exists() for run in runs)
+    assert all(json.loads((run / "summary.json").read_text())["status"] == "finished" for run in runs)
+
+
+def test_divergence_is_recorded_and_the_sweep_goes_on(tmp_path):
+    shell(
+        ["-m", "learner=qnet", "learner.loss=squared", "learner.max_grad_norm=0", "learner.warmup_steps=50",
+         "learner.learning_rate=1e12,1e-3", "study_name=blowup", f"results_dir={tmp_path}", *TINY],
+        tmp_path,
+    )
+    runs = {OmegaConf.load(p / "config.yaml").learner.learning_rate: p
+            for p in (tmp_path / "blowup").iterdir() if not p.name.startswith(".")}
+    assert sorted(runs) == [1e-3, 1e12]
+    huge, sane = runs[1e12], runs[1e-3]
+    summary = json.loads((huge / "summary.json").read_text())
+    assert summary["status"] == "diverged" and 0 < summary["diverged_at_step"] < 1500
+    assert (huge / "FINISHED").exists()
+    assert json.loads((sane / "summary.json").read_text())["status"] == "finished"
+    with (huge / "metrics.csv").open() as fh:
+        assert max(int(r["step"]) for r in csv.DictReader(fh)) <= summary["diverged_at_step"]
