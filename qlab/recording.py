@@ -24,6 +24,8 @@ from pathlib import Path
 from typing import Any
 
 MARKER = "FINISHED"
+_UMASK = os.umask(0o022)
+os.umask(_UMASK)
 METRICS = "metrics.csv"
 SUMMARY = "summary.json"
 
@@ -32,6 +34,7 @@ def atomic_write_text(path: Path, text: str) -> None:
     """Write ``text`` to ``path`` through a temporary file and a rename (never half-written)."""
     path.parent.mkdir(parents=True, exist_ok=True)
     fd, tmp = tempfile.mkstemp(dir=path.parent, prefix=f".{path.name}.", suffix=".tmp")
+    os.fchmod(fd, 0o666 & ~_UMASK)  # mkstemp makes owner-only files; give the usual permissions
     try:
         with os.fdopen(fd, "w", encoding="utf-8") as fh:
             fh.write(text)

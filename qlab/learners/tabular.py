@@ -6,17 +6,23 @@ table is a linear function of one-hot cell features (Sutton & Barto 2018, sec. 9
 :class:`~qlab.learners.linear.LinearQ` on :class:`~qlab.features.GridBins`, with the same batch,
 step-size (``step_size_count="visits"``: the visit count of the cell-action pair) and
 exploration rules.
+
+:meth:`TabularQ.initialise_from` starts the table at a function of the state (e.g. the task's
+potential Phi), read at each cell's centre: for a true table, starting Q at Phi and learning on
+the base reward is the same as starting at 0 and learning on the Phi-shaped reward, Q differing by
+Phi(s) at every step (Wiewiora 2003, JAIR 19).
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from dataclasses import dataclass, field
 
 import numpy as np
 from gymnasium import spaces
 
 from qlab.features import GridBins, check_bins, resolve_bounds
-from qlab.learners.linear import LinearQ, QLearningConfig
+from qlab.learners.linear import LinearQ, QLearningConfig, function_values
 
 
 @dataclass
@@ -47,3 +53,17 @@ class TabularQ(LinearQ):
     def table(self) -> np.ndarray:
         """The Q-table ``(n_cells, n_actions)`` (a view; cells in C order of the grid)."""
         return self.weights
+
+    def cell_centres(self) -> np.ndarray:
+        """Centre of every cell, ``(n_cells, d)``, in the table's (C) order."""
+        grid = self.features
+        coords = np.stack(np.unravel_index(np.arange(grid.n_features), tuple(grid.bins)), axis=1)
+        return grid.low + (coords + 0.5) * grid.width
+
+    def initialise_from(self, values: Callable[[np.ndarray], np.ndarray]) -> None:
+        """Set ``Q(cell, a) = values(centre of cell)`` for every action (``values``: ``(B, d)`` -> ``(B,)``).
+
+        Exact for the table: every state in a cell shares the cell's value. Visit counts and
+        counters are left as they are.
+        """
+        self.weights[:] = function_values(values, self.cell_centres())[:, None]

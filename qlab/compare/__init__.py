@@ -1,0 +1,1 @@
+"""Comparison report: learners x shaping variants across seeds (statistics, tables, plots)."""

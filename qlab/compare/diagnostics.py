@@ -1,0 +1,282 @@
+"""Where a learned Q-function goes wrong, measured against the exact Dock grid model (and LQ closed form).
+
+* :func:`grid_reference`: Q* of one shaping variant (and of the task's own reward) on a
+  :class:`~qlab.reference.dock_grid.DockGrid`, computed once and shared by many learners.
+* :func:`learned_q_on_grid`: the learner's Q at the observations of the grid nodes.
+* :func:`value_maps`: learned V, V* and where the greedy action is not optimal, as
+  ``(n_position, n_velocity)`` pictures.
+* :func:`policy_loss`: V*(s0) - V^pi(s0) on the task's own reward for the learner's greedy policy.
+* :func:`error_split`: RMS error of Q against Q* split into approximation (the best fit of Q*
+  inside the learner's function class, :func:`approximation_error`) and what learning left on top.
+* :func:`lq_diagnostics`: gain, Q-matrix and cost of an LSTD-Q learner on the linear-quadratic task.
+
+All grid quantities are over the live grid nodes (not the two absorbing nodes), every node and
+action weighted alike. Learners always see observations, ``task.observe(node)``, never raw states.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+import torch
+from numpy.typing import ArrayLike
+
+from qlab.learners.linear import LinearQ, least_squares_weights
+from qlab.learners.lstdq import LSTDQ
+from qlab.learners.qnet import QNetLearner, _mlp
+from qlab.reference.dock_grid import DockGrid
+from qlab.reference.finite_mdp import TransitionModel, evaluate_policy, value_iteration
+from qlab.reference.lq import check_lq_matrices, cost_to_go_matrix, gain_q_matrix, lq_solution
+from qlab.tasks.dock import Dock
+
+#: An action counts as optimal when its Q* is within this much of V* (times max(1, max |Q*|)).
+TIE_TOLERANCE = 1e-9
+
+#: Supervised fit of a Q-network's architecture to Q*: full-batch Adam steps, step size, seed.
+NETWORK_FIT_STEPS = 2_000
+NETWORK_FIT_LEARNING_RATE = 1e-3
+NETWORK_FIT_SEED = 0
+
+
+@dataclass(frozen=True)
+class GridReference:
+    """Exact answers on a Dock grid for one shaping variant; arrays over live nodes unless noted."""
+
+    grid: DockGrid
+    model: TransitionModel
+    variant: str
+    gamma: float
+    observations: np.ndarray  # (n_grid, obs_dim): what a learner sees at each node
+    q_star: np.ndarray  # (n_grid, A): Q* of the variant's rewards (what a learner of that variant estimates)
+    q_star_base: np.ndarray  # (n_grid, A): Q* of the task's own reward
+    base_reward: np.ndarray  # (n_states, A): the task's own reward, absorbing nodes included
+    v_star_base: np.ndarray  # (n_states,): V* of the task's own reward, absorbing nodes included
+    start_weights: np.ndarray  # (n_states,): the start distribution on the nodes
+
+    @property
+    def v_star(self) -> np.ndarray:
+        """V* of the variant's rewards at the live nodes, ``(n_grid,)``."""
+        return self.q_star.max(axis=1)
+
+    @property
+    def optimal_start_value(self) -> float:
+        """V*(s0) of the task's own reward under the start distribution."""
+        return float(self.start_weights @ self.v_star_base)
+
+
+def grid_reference(
+    task: Dock,
+    gamma: float,
+    variant: str,
+    n_position: int,
+    n_velocity: int,
+    progress_scale: float | None = None,
+    cache: bool | str = False,
+) -> GridReference:
+    """Solve the Dock grid model for ``variant`` and for the task's own reward (value iteration)."""
+    grid = DockGrid(task, n_position, n_velocity, cache=cache)
+    model = TransitionModel.build(grid.transitions)
+    base_reward = grid.rewards("none", gamma)
+    q_base = value_iteration(model, base_reward, gamma)
+    rewards = grid.rewards(variant, gamma, progress_scale)  # checks the variant
+    q_variant = q_base if variant == "none" else value_iteration(model, rewards, gamma)
+    return GridReference(
+        grid=grid,
+        model=model,
+        variant=variant,
+        gamma=float(gamma),
+        observations=task.observe(grid.nodes),
+        q_star=q_variant[: grid.n_grid],
+        q_star_base=q_base[: grid.n_grid],
+        base_reward=base_reward,
+        v_star_base=q_base.max(axis=1),
+        start_weights=grid.start_weights(),
+    )
+
+
+def learned_q_on_grid(learner: Any, ref: GridReference) -> np.ndarray:
+    """``learner.q_values`` at the observation of every grid node, ``(n_grid, A)`` float64 (one batch)."""
+    q = np.asarray(learner.q_values(ref.observations), dtype=np.float64)
+    if q.shape != ref.q_star.shape:
+        raise ValueError(f"learner.q_values must return shape (n_grid, n_actions) = {ref.q_star.shape}, got {q.shape}")
+    return q
+
+
+def _rms(x: np.ndarray) -> float:
+    return float(np.sqrt(np.mean(np.square(x))))
+
+
+def _optimal(q_star: np.ndarray, actions: np.ndarray) -> np.ndarray:
+    """Whether each node's ``action`` is optimal for ``q_star`` (values compared, so ties count as optimal)."""
+    tolerance = TIE_TOLERANCE * max(1.0, float(np.max(np.abs(q_star))))
+    chosen = np.take_along_axis(q_star, actions[:, None], axis=1)[:, 0]
+    return chosen >= q_star.max(axis=1) - tolerance
+
+
+@dataclass(frozen=True)
+class ValueMaps:
+    """Pictures over the grid, each ``(n_position, n_velocity)``, with the axes they are drawn on."""
+
+    positions_m: np.ndarray  # (n_position,)
+    velocities_m_s: np.ndarray  # (n_velocity,)
+    learned_v: np.ndarray  # max_a Q(s, a) of the learner
+    optimal_v: np.ndarray  # V* of the variant's rewards
+    disagreement: np.ndarray  # bool: the learner's greedy action is not optimal for the variant's Q*
+
+
+def value_maps(learner: Any, ref: GridReference) -> ValueMaps:
+    """Learned V, V* and the greedy-policy disagreement mask on the grid, ready to plot."""
+    q = learned_q_on_grid(learner, ref)
+    shape = (ref.grid.n_position, ref.grid.n_velocity)
+    return ValueMaps(
+        positions_m=ref.grid.positions_m,
+        velocities_m_s=ref.grid.velocities_m_s,
+        learned_v=q.max(axis=1).reshape(shape),
+        optimal_v=ref.v_star.reshape(shape),
+        disagreement=~_optimal(ref.q_star, q.argmax(axis=1)).reshape(shape),
+    )
+
+
+def policy_loss(learner: Any, ref: GridReference) -> float:
+    """V*(s0) - V^pi(s0) on the task's own reward, pi greedy for the learner at the grid nodes (ties: lowest index).
+
+    Both values come from the same grid model (exact policy evaluation); s0 is the start distribution.
+    """
+    actions = learned_q_on_grid(learner, ref).argmax(axis=1)
+    policy = np.zeros(ref.base_reward.shape)
+    policy[np.arange(actions.size), actions] = 1.0
+    policy[actions.size :, 0] = 1.0  # absorbing nodes: any action
+    v_pi = evaluate_policy(ref.model, ref.base_reward, ref.gamma, policy)
+    return float(ref.start_weights @ (ref.v_star_base - v_pi))
+
+
+def _linear_features(learner: Any):
+    """The state feature map of a learner linear in its weights (one weight vector per action), else None."""
+    if isinstance(learner, LinearQ):
+        return learner.features
+    if isinstance(learner, LSTDQ) and not learner.continuous:
+        return learner.head.features
+    return None
+
+
+def best_fit(learner: Any, ref: GridReference, network_steps: int = NETWORK_FIT_STEPS) -> np.ndarray:
+    """The best fit of ``ref.q_star`` inside the learner's function class, ``(n_grid, A)``.
+
+    Uses the learner's feature map or architecture, never its weights, so it depends on the
+    learner's class and config only. Linear classes (TabularQ, LinearQ, discrete LSTDQ): least
+    squares per action over the grid nodes, uniform weights; for a table, the mean of Q* over
+    the nodes in each cell. QNetLearner: the same network architecture trained on Q* by
+    full-batch Adam (``network_steps`` steps, fixed seed, one torch thread): an upper bound of the
+    best fit, as training need not reach the optimum.
+    """
+    features = _linear_features(learner)
+    if features is not None:
+        weights = least_squares_weights(features, ref.observations, ref.q_star)
+        return features.sparse(ref.observations) @ weights
+    if isinstance(learner, QNetLearner):
+        return _network_fit(learner, ref, network_steps)
+    raise ValueError(
+        "learner must be a TabularQ, LinearQ, LSTDQ (discrete actions) or QNetLearner for a best fit, "
+        f"got {type(learner).__name__}"
+    )
+
+
+def _network_fit(learner: QNetLearner, ref: GridReference, steps: int) -> np.ndarray:
+    if int(steps) != steps or steps < 1:
+        raise ValueError(f"network_steps must be an integer >= 1, got {steps!r}")
+    threads = torch.get_num_threads()
+    torch.set_num_threads(1)
+    try:
+        generator = torch.Generator().manual_seed(NETWORK_FIT_SEED)
+        net = _mlp(learner.obs_dim, learner.config.hidden_sizes, learner.n_actions, generator)
+        x = torch.from_numpy(np.asarray(ref.observations, dtype=np.float32))
+        y = torch.from_numpy(ref.q_star.astype(np.float32))
+        optimizer = torch.optim.Adam(net.parameters(), lr=NETWORK_FIT_LEARNING_RATE)
+        for _ in range(int(steps)):
+            optimizer.zero_grad(set_to_none=True)
+            torch.nn.functional.mse_loss(net(x), y).backward()
+            optimizer.step()
+        with torch.no_grad():
+            return net(x).double().numpy()
+    finally:
+        torch.set_num_threads(threads)
+
+
+def approximation_error(learner: Any, ref: GridReference, network_steps: int = NETWORK_FIT_STEPS) -> float:
+    """RMS distance from Q* to its best fit in the learner's function class (see :func:`best_fit`).
+
+    Independent of the learner's weights and seed: compute it once per class and config.
+    """
+    return _rms(best_fit(learner, ref, network_steps) - ref.q_star)
+
+
+@dataclass(frozen=True)
+class ErrorSplit:
+    """RMS errors of a learned Q against Q* over the live grid state-action pairs."""
+
+    total: float  # RMS of Q - Q*
+    approximation: float  # RMS of (best fit in the class) - Q*
+    remainder: float | None  # linear classes: sqrt(total^2 - approximation^2), what learning left; else None
+
+
+def error_split(learner: Any, ref: GridReference, approximation: float | None = None) -> ErrorSplit:
+    """Split the error of the learner's Q into approximation and the remainder left by learning.
+
+    ``approximation``: a value from :func:`approximation_error` for this learner's class and
+    config, to reuse across seeds; computed here when None. For a class linear in its weights
+    the learned Q lies in the span the best fit projects onto, so the squared errors add
+    (Pythagoras for an orthogonal projection) and the remainder is the RMS distance of Q from the
+    best fit. A network is no linear space: both numbers are reported, no remainder.
+    """
+    total = _rms(learned_q_on_grid(learner, ref) - ref.q_star)
+    approx = approximation_error(learner, ref) if approximation is None else float(approximation)
+    linear = _linear_features(learner) is not None
+    remainder = float(np.sqrt(max(total**2 - approx**2, 0.0))) if linear else None
+    return ErrorSplit(total=total, approximation=approx, remainder=remainder)
+
+
+# --- linear-quadratic -----------------------------------------------------------------------
+
+
+@dataclass(frozen=True)
+class LQDiagnostics:
+    """An LSTD-Q learner's quadratic Q-function against the closed form (Frobenius norms)."""
+
+    gain_error: float  # |K - K*| / |K*|, K the gain the learner acts with (u = -K x + k)
+    q_matrix_error: float  # |H - H*| / |H*|, H the learner's cost-form Q matrix (minus its weights' matrix)
+    cost_ratio: float  # tr(P_K) / tr(P*): cost of u = -K x against the optimum, x0 ~ N(0, I); inf if unstable
+
+
+def lq_diagnostics(learner: Any, A: ArrayLike, B: ArrayLike, Q: ArrayLike, R: ArrayLike, gamma: float) -> LQDiagnostics:
+    """Compare a continuous-action LSTD-Q learner (quadratic features of ``[x; u]``) with ``lq_solution``.
+
+    The learner's ``Q(x, u) = z'Mz + g'z + c`` (reward form, ``z = [x; u]``) gives ``H = -M``;
+    its linear term, constant and control offset ``k`` are not scored (all zero at the optimum
+    of the noise-free plant; noise moves only the constant).
+    """
+    if not (isinstance(learner, LSTDQ) and learner.continuous):
+        raise ValueError(
+            f"learner must be an LSTDQ with continuous actions (quadratic features), got {type(learner).__name__}"
+        )
+    A, B, Q, R = check_lq_matrices(A, B, Q, R)
+    K_star, H_star = lq_solution(A, B, Q, R, gamma)
+    head = learner.head
+    M, _, _ = head.quad.to_matrix(head.weights)
+    if M.shape != H_star.shape:
+        raise ValueError(f"the learner's Q matrix is {M.shape}, but A, B give a {H_star.shape} Q matrix")
+    K = head.gain
+    n = A.shape[0]
+    try:
+        H_K = gain_q_matrix(A, B, Q, R, gamma, K)
+    except ValueError:  # K does not stabilise the discounted closed loop: unbounded cost
+        cost_ratio = np.inf
+    else:
+        closed = np.vstack([np.eye(n), -K])  # V_K(x) = Q_K(x, -K x) = x' P_K x
+        cost_ratio = float(np.trace(closed.T @ H_K @ closed) / np.trace(cost_to_go_matrix(A, B, Q, R, gamma)))
+    return LQDiagnostics(
+        gain_error=float(np.linalg.norm(K - K_star) / np.linalg.norm(K_star)),
+        q_matrix_error=float(np.linalg.norm(-M - H_star) / np.linalg.norm(H_star)),
+        cost_ratio=cost_ratio,
+    )

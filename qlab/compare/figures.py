@@ -1,0 +1,148 @@
+"""Report figures (matplotlib, Agg canvas, no pyplot state): one colour per shaping arm everywhere.
+
+Every function returns a :class:`matplotlib.figure.Figure`; :func:`save_png` writes it small.
+"""
+
+from __future__ import annotations
+
+import zlib
+from pathlib import Path
+
+import numpy as np
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.colors import ListedColormap
+from matplotlib.figure import Figure
+from PIL import Image
+
+from qlab.compare.diagnostics import ValueMaps
+from qlab.compare.measures import Band, Estimate
+from qlab.compare.runs import START_AT_POTENTIAL_ARM
+
+#: colour of each known arm (Okabe & Ito colour-blind-safe palette), used by every figure
+ARM_COLOURS = {
+    "none": "#3b3b3b",
+    START_AT_POTENTIAL_ARM: "#009e73",
+    "potential": "#0072b2",
+    "progress": "#d55e00",
+}
+_OTHER_COLOURS = ("#cc79a7", "#e69f00", "#56b4e9", "#a08c00")
+DPI = 110
+PANEL = (4.2, 3.0)  # inches per panel
+STEPS_LABEL = "environment steps"
+SUCCESS_LABEL = "success rate (fraction of episodes)"
+RETURN_LABEL = "discounted return (task's own reward, unitless)"
+
+
+def arm_colour(arm: str) -> str:
+    """The colour of ``arm``: fixed for known arms, a stable pick from spare colours otherwise."""
+    return ARM_COLOURS.get(arm) or _OTHER_COLOURS[zlib.crc32(arm.encode()) % len(_OTHER_COLOURS)]
+
+
+def _figure(n_panels: int, height: float = PANEL[1], width: float = PANEL[0]) -> tuple[Figure, list]:
+    fig = Figure(figsize=(width * n_panels, height), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(1, n_panels, squeeze=False)[0]
+    for ax in axes:
+        _style(ax)
+    return fig, list(axes)
+
+
+def _style(ax) -> None:
+    ax.spines[["top", "right"]].set_visible(False)
+    ax.grid(True, axis="y", color="#e4e4e4", linewidth=0.8)
+    ax.set_axisbelow(True)
+    ax.tick_params(labelsize=8)
+    ax.xaxis.label.set_size(8.5)
+    ax.yaxis.label.set_size(8.5)
+
+
+def _title(ax, text: str) -> None:
+    ax.set_title(text, loc="left", fontsize=9.5, fontweight="bold")
+
+
+def band_figure(
+    panels: dict[str, dict[str, Band]], xlabel: str, ylabel: str, ylim: tuple[float, float] | None = None,
+    zero_line: bool = False,
+) -> Figure:
+    """One panel per learner, one line per arm: the band's centre with its interval shaded."""
+    fig, axes = _figure(max(len(panels), 1))
+    for ax, (learner, arms) in zip(axes, panels.items(), strict=False):
+        for arm, band in arms.items():
+            colour = arm_colour(arm)
+            ax.fill_between(band.x, band.low, band.high, color=colour, alpha=0.18, linewidth=0)
+            ax.plot(band.x, band.centre, color=colour, linewidth=1.6, label=arm)
+        if zero_line:
+            ax.axhline(0.0, color="#888888", linewidth=0.8, linestyle="--")
+        if ylim is not None:
+            ax.set_ylim(*ylim)
+        ax.set_xlabel(xlabel)
+        ax.set_ylabel(ylabel)
+        _title(ax, learner)
+        ax.legend(fontsize=7.5, frameon=False)
+    return fig
+
+
+def interval_figure(
+    panels: list[tuple[str, dict[tuple[str, str], Estimate]]], reference: float | None = None,
+    xlim: tuple[float, float] | None = None,
+) -> Figure:
+    """Dot-and-interval rows (one per learner and arm), one panel per measure titled by its label."""
+    rows = list(dict.fromkeys(key for _, entries in panels for key in entries))
+    fig, axes = _figure(max(len(panels), 1), height=0.9 + 0.28 * len(rows))
+    for ax, (label, entries) in zip(axes, panels, strict=False):
+        ax.grid(False)
+        ax.grid(True, axis="x", color="#e4e4e4", linewidth=0.8)
+        for y, key in enumerate(rows):
+            if key not in entries:
+                continue
+            e = entries[key]
+            colour = arm_colour(key[1])
+            ax.plot([e.low, e.high], [y, y], color=colour, linewidth=2.2, solid_capstyle="butt")
+            ax.plot([e.value], [y], "o", color=colour, markersize=5.5, label=key[1])
+        if reference is not None:
+            ax.axvline(reference, color="#888888", linewidth=0.8, linestyle="--")
+        if xlim is not None:
+            ax.set_xlim(*xlim)
+        ax.set_yticks(range(len(rows)), [f"{learner} / {arm}" for learner, arm in rows])
+        ax.set_ylim(len(rows) - 0.5, -0.5)
+        ax.set_xlabel(label)
+    return fig
+
+
+def value_map_figure(learner: str, maps: list[tuple[str, str, ValueMaps]]) -> Figure:
+    """Rows of (arm, run name, maps); columns learned V, V* of the training reward, greedy actions not optimal."""
+    fig = Figure(figsize=(11.5, 2.7 * len(maps) + 0.3), layout="constrained")
+    FigureCanvasAgg(fig)
+    axes = fig.subplots(len(maps), 3, squeeze=False)
+    flags = ListedColormap(["#f2f2f2", "#c0392b"])
+    for row, (arm, run, m) in zip(axes, maps, strict=True):
+        extent = (m.positions_m[0], m.positions_m[-1], m.velocities_m_s[0], m.velocities_m_s[-1])
+        both = np.concatenate([m.learned_v.ravel(), m.optimal_v.ravel()])
+        both = both[np.isfinite(both)]
+        vmin, vmax = (float(both.min()), float(both.max())) if both.size else (0.0, 1.0)
+        wrong = float(np.mean(m.disagreement))
+        panels = ((m.learned_v, f"{learner} / {arm}: learned V", "viridis", vmin, vmax),
+                  (m.optimal_v, "V* of its training reward", "viridis", vmin, vmax),
+                  (m.disagreement.astype(float), f"red: greedy action not optimal ({wrong:.0%})", flags, 0.0, 1.0))
+        images = []
+        for ax, (data, title, cmap, lo, hi) in zip(row, panels, strict=True):
+            images.append(ax.imshow(data.T, origin="lower", aspect="auto", extent=extent, cmap=cmap, vmin=lo, vmax=hi,
+                                    interpolation="nearest"))
+            ax.set_xlabel("position (m)", fontsize=8.5)
+            ax.set_ylabel("velocity (m/s)", fontsize=8.5)
+            ax.tick_params(labelsize=8)
+            _title(ax, title)
+        fig.colorbar(images[0], ax=list(row[:2]), shrink=0.85, label="value (unitless)").ax.tick_params(labelsize=7)
+        row[0].annotate(f"run {run}", (0.0, -0.32), xycoords="axes fraction", fontsize=7, color="#555555")
+    return fig
+
+
+def save_png(fig: Figure, path: Path) -> Path:
+    """Write ``fig`` as a small PNG: modest resolution, reduced to a 256-colour palette."""
+    fig.set_dpi(DPI)
+    fig.patch.set_facecolor("white")
+    canvas = FigureCanvasAgg(fig)
+    canvas.draw()
+    image = Image.fromarray(np.asarray(canvas.buffer_rgba())).convert("RGB")
+    image.quantize(colors=256).save(path, format="PNG", optimize=True, dpi=(DPI, DPI))
+    return path

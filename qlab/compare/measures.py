@@ -1,0 +1,146 @@
+"""The numbers a report shows for one learner's arms: curves, final scores, improvement, speed.
+
+Everything is computed on the reported runs of a :class:`~qlab.compare.selection.Selection`,
+failed runs included as failures (see :mod:`qlab.compare.runs`).
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+
+from qlab.compare import stats
+from qlab.compare.runs import Run, eval_matrix, eval_steps
+from qlab.compare.selection import Selection
+
+CONFIDENCE = 0.95
+#: tau grid of the performance profiles (final success rate is a fraction)
+PROFILE_TAUS = np.linspace(0.0, 1.0, 101)
+
+
+@dataclass
+class Band:
+    """A curve with its pointwise interval: mean (or other statistic), low and high at each x."""
+
+    x: np.ndarray
+    centre: np.ndarray
+    low: np.ndarray
+    high: np.ndarray
+
+
+@dataclass
+class Estimate:
+    """A statistic with its percentile bootstrap interval."""
+
+    value: float
+    low: float
+    high: float
+
+    @property
+    def covers_half(self) -> bool:
+        """Whether the interval includes 0.5 (a probability of improvement not distinguishable from a tie)."""
+        return self.low <= 0.5 <= self.high
+
+
+@dataclass
+class ArmMeasures:
+    """One (learner, arm): counts, curves and final statistics over its reported runs."""
+
+    arm: str
+    seeds: list[int]
+    n_diverged: int
+    n_crashed: int
+    success: Band
+    discounted_return: Band
+    overestimation: Band | None  # None when no finished run recorded q_start
+    final_success: np.ndarray  # per run (failures 0)
+    final_return: np.ndarray
+    iqm_success: Estimate
+    iqm_return: Estimate
+    threshold_steps: np.ndarray  # per run, censored at the budget
+    reached: np.ndarray
+    budget: int
+    profile: Band
+    improvement_success: Estimate | None = None  # P(arm > none) on final success; None for none itself
+    improvement_return: Estimate | None = None
+
+    @property
+    def n_runs(self) -> int:
+        return len(self.seeds)
+
+    @property
+    def n_censored(self) -> int:
+        return int((~self.reached).sum())
+
+    def median_threshold_steps(self) -> float:
+        """Median steps to threshold, censored runs at the budget (a lower bound when half or more are censored)."""
+        return float(np.median(self.threshold_steps))
+
+
+def _band(x: np.ndarray, matrix: np.ndarray, seed: int) -> Band:
+    low, high = stats.bootstrap_ci(matrix, np.mean, CONFIDENCE, seed=seed)
+    return Band(x, matrix.mean(axis=0), low, high)
+
+
+def iqm_estimate(values: np.ndarray, seed: int = 0) -> Estimate:
+    """IQM over runs with its percentile bootstrap interval."""
+    low, high = stats.bootstrap_ci(values, stats.iqm, CONFIDENCE, seed=seed)
+    return Estimate(float(stats.iqm(values)), float(low), float(high))
+
+
+def _improvement(x: np.ndarray, y: np.ndarray, seed: int) -> Estimate:
+    low, high = stats.probability_of_improvement_ci(x, y, CONFIDENCE, seed=seed)
+    return Estimate(stats.probability_of_improvement(x, y), low, high)
+
+
+def _overestimation(runs: list[Run], steps: np.ndarray, seed: int) -> Band | None:
+    finished = [r for r in runs if not r.failed and "q_start" in r.evals and "trained_discounted_return" in r.evals]
+    if not finished:
+        return None
+    gap = eval_matrix(finished, "q_start", steps) - eval_matrix(finished, "trained_discounted_return", steps)
+    keep = np.all(np.isfinite(gap), axis=0)
+    return _band(steps[keep], gap[:, keep], seed)
+
+
+def arm_measures(runs: list[Run], steps: np.ndarray, threshold: float, seed: int = 0) -> ArmMeasures:
+    """Measures of one arm's reported runs on the evaluation ``steps`` grid."""
+    success = eval_matrix(runs, "success_rate", steps)
+    ret = eval_matrix(runs, "discounted_return", steps)
+    keep = np.all(np.isfinite(success), axis=0) & np.all(np.isfinite(ret), axis=0)
+    final_success = np.array([r.final["success_rate"] for r in runs])
+    final_return = np.array([r.final["discounted_return"] for r in runs])
+    budget = max(r.budget for r in runs)
+    first, reached = stats.steps_to_threshold(steps[keep], success[:, keep], threshold, budget)
+    p_low, p_high = stats.performance_profile_ci(final_success, PROFILE_TAUS, CONFIDENCE, seed=seed)
+    return ArmMeasures(
+        arm=runs[0].arm,
+        seeds=[r.seed for r in runs],
+        n_diverged=sum(r.status == "diverged" for r in runs),
+        n_crashed=sum(r.status == "crashed" for r in runs),
+        success=_band(steps[keep], success[:, keep], seed),
+        discounted_return=_band(steps[keep], ret[:, keep], seed),
+        overestimation=_overestimation(runs, steps, seed),
+        final_success=final_success,
+        final_return=final_return,
+        iqm_success=iqm_estimate(final_success, seed),
+        iqm_return=iqm_estimate(final_return, seed),
+        threshold_steps=first,
+        reached=reached,
+        budget=budget,
+        profile=Band(PROFILE_TAUS, stats.performance_profile(final_success, PROFILE_TAUS), p_low, p_high),
+    )
+
+
+def learner_measures(selection: Selection, threshold: float, seed: int = 0) -> dict[str, ArmMeasures]:
+    """Measures of every arm of a learner; arms other than ``none`` get P(improvement over none)."""
+    all_runs = [r for runs in selection.runs.values() for r in runs]
+    steps = eval_steps(all_runs)
+    out = {arm: arm_measures(selection.runs[arm], steps, threshold, seed) for arm in selection.arms}
+    base = out.get("none")
+    if base is not None:
+        for arm, m in out.items():
+            if arm != "none":
+                m.improvement_success = _improvement(m.final_success, base.final_success, seed)
+                m.improvement_return = _improvement(m.final_return, base.final_return, seed)
+    return out

@@ -1,0 +1,190 @@
+"""Statistics for comparing runs across seeds, after Agarwal et al. (2021), "Deep RL at the edge of
+the statistical precipice" (NeurIPS): interquartile mean, percentile bootstrap intervals over runs,
+probability of improvement, steps to a success threshold and run-score performance profiles.
+
+Every bootstrap draws its resample indices from ``np.random.default_rng(seed)`` in one call, so a
+result depends only on the data, ``n_resamples`` and ``seed``.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+
+import numpy as np
+from scipy.stats import rankdata
+
+# Largest resampled array (elements) built at once; bigger bootstraps are evaluated in chunks.
+_MAX_RESAMPLED_ELEMENTS = 1 << 23
+
+
+def iqm(x: np.ndarray, axis: int = -1) -> np.ndarray | float:
+    """Interquartile mean along ``axis``: the mean after dropping ``floor(n / 4)`` values at each end.
+
+    Same definition as ``scipy.stats.trim_mean(x, 0.25, axis=axis)``.
+    """
+    a = np.asarray(x, dtype=np.float64)
+    if not -a.ndim <= axis < a.ndim:
+        raise ValueError(f"axis must lie in [{-a.ndim}, {a.ndim}) for x of shape {a.shape}, got {axis!r}")
+    if a.shape[axis] == 0:
+        raise ValueError(f"x must be non-empty along axis {axis}, got shape {a.shape}")
+    n = a.shape[axis]
+    cut = n // 4
+    kept = np.moveaxis(np.sort(a, axis=axis), axis, 0)[cut : n - cut]
+    return kept.mean(axis=0)
+
+
+def _check_confidence(confidence: float) -> None:
+    if not 0.0 < confidence < 1.0:
+        raise ValueError(f"confidence must lie in the open interval (0, 1), got {confidence!r}")
+
+
+def _check_resamples(n_resamples: int) -> None:
+    if int(n_resamples) != n_resamples or n_resamples < 1:
+        raise ValueError(f"n_resamples must be an integer >= 1, got {n_resamples!r}")
+
+
+def _check_runs(name: str, values: np.ndarray, ndim: int | tuple[int, ...] = 1) -> np.ndarray:
+    a = np.asarray(values, dtype=np.float64)
+    allowed = (ndim,) if isinstance(ndim, int) else ndim
+    if a.ndim not in allowed:
+        raise ValueError(f"{name} must have {' or '.join(map(str, allowed))} dimension(s), got shape {a.shape}")
+    if a.shape[0] == 0:
+        raise ValueError(f"{name} must hold at least one run, got shape {a.shape}")
+    return a
+
+
+def _check_finite(name: str, values: np.ndarray) -> None:
+    if not np.all(np.isfinite(values)):
+        raise ValueError(f"{name} must be finite (no NaN or inf); drop or score missing runs first")
+
+
+def _percentile_interval(distribution: np.ndarray, confidence: float) -> tuple[np.ndarray, np.ndarray]:
+    alpha = (1.0 - confidence) / 2.0
+    low, high = np.quantile(distribution, [alpha, 1.0 - alpha], axis=0)
+    return np.asarray(low), np.asarray(high)
+
+
+def bootstrap_ci(
+    samples: np.ndarray,
+    statistic: Callable[..., np.ndarray] = np.mean,
+    confidence: float = 0.95,
+    n_resamples: int = 2000,
+    seed: int = 0,
+) -> tuple[np.ndarray, np.ndarray]:
+    """Percentile bootstrap interval of ``statistic`` over runs (the first axis of ``samples``).
+
+    ``samples`` has shape ``(n,)`` or ``(n, T)`` (T evaluation points of a learning curve); rows are
+    resampled with replacement and ``statistic(resampled, axis=0)`` must reduce the run axis
+    (NaN in ``samples`` propagates as the statistic propagates it).
+    Returns ``(low, high)``, each of shape ``()`` or ``(T,)``.
+    """
+    data = _check_runs("samples", samples, (1, 2))
+    _check_confidence(confidence)
+    _check_resamples(n_resamples)
+    n = data.shape[0]
+    index = np.random.default_rng(seed).integers(0, n, size=(n, int(n_resamples)))
+    chunk = max(1, _MAX_RESAMPLED_ELEMENTS // data.size)
+    parts = []
+    for start in range(0, int(n_resamples), chunk):
+        block = index[:, start : start + chunk]
+        values = np.asarray(statistic(data[block], axis=0))
+        if values.shape != block.shape[1:] + data.shape[1:]:
+            raise ValueError(
+                f"statistic must reduce axis 0 of an array of shape {block.shape + data.shape[1:]} "
+                f"to shape {block.shape[1:] + data.shape[1:]}, got {values.shape}"
+            )
+        parts.append(values)
+    return _percentile_interval(np.concatenate(parts, axis=0), confidence)
+
+
+def _improvement(x: np.ndarray, y: np.ndarray) -> np.ndarray:
+    """P(X > Y) + P(X = Y) / 2 along the last axis, by midranks of the pooled sample (batched)."""
+    n, m = x.shape[-1], y.shape[-1]
+    ranks = rankdata(np.concatenate([x, y], axis=-1), axis=-1)
+    u = ranks[..., :n].sum(axis=-1) - n * (n + 1) / 2.0
+    return u / (n * m)
+
+
+def probability_of_improvement(x: np.ndarray, y: np.ndarray) -> float:
+    """P(X > Y) + 0.5 P(X = Y) over all pairs of a run of variant X and a run of variant Y."""
+    a, b = _check_runs("x", x), _check_runs("y", y)
+    _check_finite("x", a)
+    _check_finite("y", b)
+    return float(_improvement(a, b))
+
+
+def probability_of_improvement_ci(
+    x: np.ndarray, y: np.ndarray, confidence: float = 0.95, n_resamples: int = 2000, seed: int = 0
+) -> tuple[float, float]:
+    """Percentile bootstrap interval of :func:`probability_of_improvement`, resampling x and y independently."""
+    a, b = _check_runs("x", x), _check_runs("y", y)
+    _check_finite("x", a)
+    _check_finite("y", b)
+    _check_confidence(confidence)
+    _check_resamples(n_resamples)
+    rng = np.random.default_rng(seed)
+    ia = rng.integers(0, a.size, size=(int(n_resamples), a.size))
+    ib = rng.integers(0, b.size, size=(int(n_resamples), b.size))
+    low, high = _percentile_interval(_improvement(a[ia], b[ib]), confidence)
+    return float(low), float(high)
+
+
+def steps_to_threshold(
+    steps: np.ndarray, curves: np.ndarray, threshold: float, budget: int
+) -> tuple[np.ndarray, np.ndarray]:
+    """First evaluation step at which each run's curve is ``>= threshold``, censored at ``budget``.
+
+    ``steps`` (T,) strictly increasing evaluation steps; ``curves`` (n_runs, T) success rates there.
+    NaN (a missing evaluation, e.g. after a crash) counts as not reached, as do evaluations after
+    ``budget``. Returns ``(first_step, reached)``; runs that never reach the threshold get ``budget``.
+    """
+    s = np.asarray(steps)
+    c = _check_runs("curves", curves, 2)
+    if s.ndim != 1 or s.size == 0:
+        raise ValueError(f"steps must be a non-empty 1-D array, got shape {s.shape}")
+    if c.shape[1] != s.size:
+        raise ValueError(f"curves must have shape (n_runs, {s.size}) to match steps, got {c.shape}")
+    if np.any(np.diff(s) <= 0):
+        raise ValueError("steps must be strictly increasing")
+    hit = (c >= threshold) & (s <= budget)
+    reached = hit.any(axis=1)
+    first = np.where(reached, s[hit.argmax(axis=1)], budget)
+    return first, reached
+
+
+def performance_profile(scores: np.ndarray, taus: np.ndarray) -> np.ndarray:
+    """Fraction of runs whose score exceeds each tau (run-score distribution, Agarwal et al. 2021)."""
+    s = _check_runs("scores", scores)
+    _check_finite("scores", s)
+    t = np.asarray(taus, dtype=np.float64)
+    return 1.0 - np.searchsorted(np.sort(s), t, side="right") / s.size
+
+
+def performance_profile_ci(
+    scores: np.ndarray, taus: np.ndarray, confidence: float = 0.95, n_resamples: int = 2000, seed: int = 0
+) -> tuple[np.ndarray, np.ndarray]:
+    """Percentile bootstrap band of :func:`performance_profile` over runs; arrays shaped like ``taus``."""
+    s = _check_runs("scores", scores)
+    _check_finite("scores", s)
+    t = np.asarray(taus, dtype=np.float64)
+    above = (s[:, None] > t.ravel()[None, :]).astype(np.float64)
+    low, high = bootstrap_ci(above, np.mean, confidence, n_resamples, seed)
+    return low.reshape(t.shape), high.reshape(t.shape)
+
+
+def few_seeds_warning(n: int, minimum: int = 10) -> str | None:
+    """A one-sentence warning when fewer than ``minimum`` runs back an interval, else None.
+
+    Agarwal et al. (2021) caution that percentile bootstrap intervals from few runs under-cover
+    (from memory); the default ``minimum = 10`` is a rule of thumb (common practice, no source).
+    """
+    if int(n) != n or n < 0:
+        raise ValueError(f"n must be a non-negative integer, got {n!r}")
+    if int(minimum) != minimum or minimum < 1:
+        raise ValueError(f"minimum must be an integer >= 1, got {minimum!r}")
+    if n >= minimum:
+        return None
+    return (
+        f"Only {n} run(s) per variant (fewer than {minimum}): percentile bootstrap intervals from so few "
+        "seeds tend to be too narrow, so read them as optimistic (Agarwal et al. 2021)."
+    )

@@ -1,0 +1,274 @@
+"""Comparison statistics against scipy, normal theory and hand-checkable cases."""
+
+import numpy as np
+import pytest
+from hypothesis import given
+from hypothesis import strategies as st
+from hypothesis.extra import numpy as hnp
+from scipy import stats
+
+from qlab.compare import stats as stats_module
+from qlab.compare.stats import (
+    bootstrap_ci,
+    few_seeds_warning,
+    iqm,
+    performance_profile,
+    performance_profile_ci,
+    probability_of_improvement,
+    probability_of_improvement_ci,
+    steps_to_threshold,
+)
+
+FINITE = st.floats(-1e6, 1e6, allow_nan=False, allow_infinity=False)
+TIED = st.integers(0, 5).map(float)  # few distinct values, so ties are common
+
+
+def mc_tolerance(distribution: np.ndarray, confidence: float, n_resamples: int, k: float = 5.0) -> np.ndarray:
+    """k standard errors of the difference of two independent Monte Carlo percentile estimates.
+
+    A sample p-quantile from B draws has standard error sqrt(p (1 - p) / B) / f(q_p) (asymptotic
+    normality of sample quantiles, Serfling 1980, section 2.3; from memory). f is approximated by a
+    normal density with the bootstrap distribution's standard deviation; two independent estimates
+    (ours and scipy's, different random streams) differ with standard error sqrt(2) times that.
+    """
+    p = (1.0 - confidence) / 2.0
+    spread = np.std(distribution, axis=0) / stats.norm.pdf(stats.norm.ppf(p))  # 1 / f(q_p)
+    return k * np.sqrt(2.0) * np.sqrt(p * (1.0 - p) / n_resamples) * spread
+
+
+# --- interquartile mean -------------------------------------------------------------------------
+
+
+@given(data=st.data(), x=hnp.arrays(np.float64, hnp.array_shapes(min_dims=1, max_dims=3, max_side=9), elements=FINITE))
+def test_iqm_matches_scipy_trim_mean(data, x):
+    axis = data.draw(st.integers(-x.ndim, x.ndim - 1))
+    expected = stats.trim_mean(x, 0.25, axis=axis)  # scipy.stats.trim_mean
+    np.testing.assert_allclose(iqm(x, axis=axis), expected, rtol=1e-12, atol=1e-9)
+
+
+def test_iqm_drops_a_quarter_at_each_end():
+    x = np.random.default_rng(0).normal(size=(8, 12))
+    # scipy.stats.trim_mean on the transposed array, reduced along axis 0
+    np.testing.assert_allclose(iqm(x, axis=1), stats.trim_mean(x.T, 0.25, axis=0), rtol=1e-12)
+
+
+def test_iqm_rejects_empty_and_bad_axis():
+    with pytest.raises(ValueError, match="x must be non-empty"):
+        iqm(np.empty((3, 0)))
+    with pytest.raises(ValueError, match="axis"):
+        iqm(np.ones(4), axis=1)
+
+
+# --- bootstrap intervals ------------------------------------------------------------------------
+
+
+@pytest.mark.parametrize("statistic", [np.mean, iqm], ids=["mean", "iqm"])
+@pytest.mark.parametrize("confidence", [0.8, 0.95])
+def test_bootstrap_ci_matches_scipy_percentile_bootstrap(statistic, confidence):
+    samples = np.random.default_rng(1).gamma(2.0, size=(30, 3))  # skewed, like success rates near 0
+    n_resamples = 20_000
+    res = stats.bootstrap(  # scipy.stats.bootstrap, percentile method
+        (samples,), statistic, n_resamples=n_resamples, method="percentile",
+        confidence_level=confidence, axis=0, vectorized=True, rng=np.random.default_rng(2),
+    )
+    low, high = bootstrap_ci(samples, statistic, confidence, n_resamples, seed=3)
+    tol = mc_tolerance(res.bootstrap_distribution.T, confidence, n_resamples)
+    assert low.shape == high.shape == (3,)
+    assert np.all(np.abs(low - res.confidence_interval.low) <= tol)
+    assert np.all(np.abs(high - res.confidence_interval.high) <= tol)
+
+
+def test_bootstrap_ci_of_one_dimensional_samples_is_scalar_shaped():
+    samples = np.random.default_rng(4).normal(size=25)
+    res = stats.bootstrap(  # scipy.stats.bootstrap, percentile method
+        (samples,), np.mean, n_resamples=20_000, method="percentile", rng=np.random.default_rng(5)
+    )
+    low, high = bootstrap_ci(samples, n_resamples=20_000)
+    tol = mc_tolerance(res.bootstrap_distribution, 0.95, 20_000)
+    assert low.shape == high.shape == ()
+    assert abs(low - res.confidence_interval.low) <= tol
+    assert abs(high - res.confidence_interval.high) <= tol
+
+
+def test_bootstrap_ci_of_mean_approaches_normal_theory_for_large_n():
+    n, n_resamples = 500, 10_000
+    x = np.random.default_rng(6).normal(3.0, 2.0, size=n)
+    se = x.std(ddof=1) / np.sqrt(n)
+    low, high = bootstrap_ci(x, np.mean, 0.95, n_resamples, seed=7)
+    # Central limit theorem: mean +- 1.96 s / sqrt(n). Tolerance: 5 Monte Carlo standard errors of a
+    # 2.5% percentile from B draws, sqrt(p (1 - p) / B) / phi(1.96) * se (see mc_tolerance); the
+    # bootstrap's own O(1/n) and skewness corrections are far smaller for normal data.
+    tol = 5.0 * np.sqrt(0.025 * 0.975 / n_resamples) / stats.norm.pdf(1.96) * se
+    assert abs(low - (x.mean() - 1.96 * se)) <= tol
+    assert abs(high - (x.mean() + 1.96 * se)) <= tol
+
+
+def test_bootstrap_ci_is_reproducible_for_a_seed():
+    x = np.random.default_rng(8).normal(size=(12, 4))
+    first, second = bootstrap_ci(x, iqm, seed=11), bootstrap_ci(x, iqm, seed=11)
+    np.testing.assert_array_equal(first[0], second[0])
+    np.testing.assert_array_equal(first[1], second[1])
+
+
+def test_bootstrap_ci_does_not_depend_on_the_chunk_size(monkeypatch):
+    x = np.random.default_rng(16).normal(size=(9, 5))
+    whole = bootstrap_ci(x, iqm, n_resamples=300, seed=17)
+    monkeypatch.setattr(stats_module, "_MAX_RESAMPLED_ELEMENTS", 100)  # 2 resamples per chunk
+    chunked = bootstrap_ci(x, iqm, n_resamples=300, seed=17)
+    np.testing.assert_array_equal(whole[0], chunked[0])
+    np.testing.assert_array_equal(whole[1], chunked[1])
+
+
+def test_bootstrap_ci_rejects_a_statistic_that_keeps_the_run_axis():
+    with pytest.raises(ValueError, match="statistic"):
+        bootstrap_ci(np.ones((5, 2)), lambda a, axis: a)
+
+
+# --- probability of improvement -----------------------------------------------------------------
+
+
+@given(x=st.lists(TIED, min_size=1, max_size=12), y=st.lists(TIED, min_size=1, max_size=12))
+def test_probability_of_improvement_matches_mann_whitney_u_with_ties(x, y):
+    x, y = np.array(x), np.array(y)
+    # scipy.stats.mannwhitneyu: U of the first sample counts pairs x > y plus half the ties
+    u = stats.mannwhitneyu(x, y, method="asymptotic").statistic
+    assert probability_of_improvement(x, y) == pytest.approx(u / (x.size * y.size), abs=1e-12)
+    # Agarwal et al. (2021), definition of P(X > Y) as an average over all run pairs
+    pairs = (x[:, None] > y[None, :]).mean() + 0.5 * (x[:, None] == y[None, :]).mean()
+    assert probability_of_improvement(x, y) == pytest.approx(pairs, abs=1e-12)
+
+
+@given(x=st.lists(FINITE, min_size=1, max_size=15))
+def test_probability_of_improvement_of_a_variant_over_itself_is_one_half(x):
+    # P(X > X') + 0.5 P(X = X') = 0.5 by symmetry of the pair count (Agarwal et al. 2021)
+    assert probability_of_improvement(np.array(x), np.array(x)) == pytest.approx(0.5, abs=1e-12)
+
+
+def test_probability_of_improvement_ci_matches_scipy_two_sample_bootstrap():
+    rng = np.random.default_rng(9)
+    x, y = rng.normal(0.6, 1.0, size=15), rng.normal(0.0, 1.0, size=12)
+    n_resamples = 20_000
+
+    def u_fraction(a, b, axis):
+        # scipy.stats.mannwhitneyu U / (n m), batched along the resample axis
+        return stats.mannwhitneyu(a, b, axis=axis, method="asymptotic").statistic / (a.shape[axis] * b.shape[axis])
+
+    res = stats.bootstrap(  # scipy.stats.bootstrap, unpaired samples resampled independently
+        (x, y), u_fraction, n_resamples=n_resamples, method="percentile", paired=False,
+        vectorized=True, rng=np.random.default_rng(10),
+    )
+    low, high = probability_of_improvement_ci(x, y, n_resamples=n_resamples, seed=12)
+    # Monte Carlo tolerance plus one lattice step 1 / (2 n m): the statistic only takes those values.
+    tol = mc_tolerance(res.bootstrap_distribution, 0.95, n_resamples) + 1.0 / (2 * x.size * y.size)
+    assert abs(low - res.confidence_interval.low) <= tol
+    assert abs(high - res.confidence_interval.high) <= tol
+
+
+def test_probability_of_improvement_rejects_nan_and_empty():
+    with pytest.raises(ValueError, match="x must be finite"):
+        probability_of_improvement(np.array([1.0, np.nan]), np.ones(3))
+    with pytest.raises(ValueError, match="y must hold at least one run"):
+        probability_of_improvement(np.ones(3), np.array([]))
+
+
+# --- steps to threshold -------------------------------------------------------------------------
+
+
+def test_steps_to_threshold_hand_cases():
+    steps = np.array([0, 100, 200, 300])
+    curves = np.array([
+        [0.0, 0.5, 0.9, 1.0],  # reaches 0.9 exactly at step 200
+        [0.0, 0.95, 0.1, 0.0],  # reaches at 100, later drops: the first step counts
+        [0.1, 0.2, 0.3, 0.4],  # never: censored at the budget
+        [0.2, np.nan, np.nan, np.nan],  # crashed after the first evaluation: not reached
+        [0.0, np.nan, 0.9, np.nan],  # a missing evaluation in between, reached at 200
+        [0.9, 1.0, 1.0, 1.0],  # reached at the first evaluation
+    ])
+    first, reached = steps_to_threshold(steps, curves, threshold=0.9, budget=400)
+    np.testing.assert_array_equal(first, [200, 100, 400, 400, 200, 0])
+    np.testing.assert_array_equal(reached, [True, True, False, False, True, True])
+
+
+def test_steps_to_threshold_ignores_evaluations_after_the_budget():
+    steps = np.array([0, 100, 200, 300])
+    curves = np.array([[0.0, 0.0, 0.0, 1.0], [0.0, 1.0, 1.0, 1.0]])
+    first, reached = steps_to_threshold(steps, curves, threshold=0.5, budget=250)
+    np.testing.assert_array_equal(first, [250, 100])
+    np.testing.assert_array_equal(reached, [False, True])
+
+
+def test_steps_to_threshold_validates_shapes():
+    with pytest.raises(ValueError, match="curves must have shape"):
+        steps_to_threshold(np.arange(3), np.zeros((2, 4)), 0.5, 10)
+    with pytest.raises(ValueError, match="steps must be strictly increasing"):
+        steps_to_threshold(np.array([0, 2, 2]), np.zeros((2, 3)), 0.5, 10)
+    with pytest.raises(ValueError, match="curves must hold at least one run"):
+        steps_to_threshold(np.arange(3), np.zeros((0, 3)), 0.5, 10)
+
+
+# --- performance profiles -----------------------------------------------------------------------
+
+
+@given(scores=st.lists(TIED, min_size=1, max_size=20), taus=st.lists(st.floats(-1.0, 6.0), min_size=1, max_size=10))
+def test_performance_profile_is_the_empirical_survival_function(scores, taus):
+    x, t = np.array(scores), np.sort(np.array(taus + scores))  # taus include the scores: ties at tau
+    profile = performance_profile(x, t)
+    # scipy.stats.ecdf(...).sf: fraction of observations strictly greater than tau
+    np.testing.assert_allclose(profile, stats.ecdf(x).sf.evaluate(t), atol=1e-12)
+    assert np.all(np.diff(profile) <= 0.0)  # non-increasing in tau (a survival function)
+
+
+def test_performance_profile_ci_matches_scipy_bootstrap():
+    scores = np.random.default_rng(13).beta(2.0, 3.0, size=20)
+    taus = np.linspace(0.0, 1.0, 9)
+    n_resamples = 20_000
+
+    def profile(a, axis):
+        # scipy wants the statistic's own components first and the resamples last: shape (taus, resamples)
+        return np.moveaxis((np.moveaxis(a, axis, -1)[..., None] > taus).mean(axis=-2), -1, 0)
+
+    res = stats.bootstrap(  # scipy.stats.bootstrap, percentile method, vector-valued statistic
+        (scores,), profile, n_resamples=n_resamples, method="percentile", vectorized=True,
+        rng=np.random.default_rng(14),
+    )
+    low, high = performance_profile_ci(scores, taus, n_resamples=n_resamples, seed=15)
+    # A fraction of 20 runs lives on multiples of 1/20: two Monte Carlo percentiles may sit one atom apart.
+    tol = 1.0 / scores.size + mc_tolerance(res.bootstrap_distribution.T, 0.95, n_resamples)
+    assert low.shape == high.shape == taus.shape
+    assert np.all(np.abs(low - res.confidence_interval.low) <= tol)
+    assert np.all(np.abs(high - res.confidence_interval.high) <= tol)
+    point = performance_profile(scores, taus)
+    assert np.all((low <= point) & (point <= high))
+
+
+# --- warnings and validation --------------------------------------------------------------------
+
+
+def test_few_seeds_warning():
+    # minimum of 10 runs: common practice, no source (Agarwal et al. 2021 on under-coverage, from memory)
+    message = few_seeds_warning(3)
+    assert message is not None and "3" in message and "narrow" in message
+    assert few_seeds_warning(10) is None
+    assert few_seeds_warning(4, minimum=5) is not None
+
+
+@pytest.mark.parametrize(
+    ("call", "name"),
+    [
+        (lambda: bootstrap_ci(np.array([])), "samples"),
+        (lambda: bootstrap_ci(np.ones((2, 2, 2))), "samples"),
+        (lambda: bootstrap_ci(np.ones(5), confidence=0.0), "confidence"),
+        (lambda: bootstrap_ci(np.ones(5), confidence=1.0), "confidence"),
+        (lambda: bootstrap_ci(np.ones(5), n_resamples=0), "n_resamples"),
+        (lambda: probability_of_improvement_ci(np.ones(3), np.ones(3), confidence=1.5), "confidence"),
+        (lambda: probability_of_improvement_ci(np.ones(3), np.ones(3), n_resamples=0), "n_resamples"),
+        (lambda: performance_profile(np.array([]), np.zeros(2)), "scores"),
+        (lambda: performance_profile_ci(np.ones(3), np.zeros(2), confidence=-0.1), "confidence"),
+        (lambda: performance_profile_ci(np.ones(3), np.zeros(2), n_resamples=0.5), "n_resamples"),
+        (lambda: few_seeds_warning(-1), "n"),
+        (lambda: few_seeds_warning(3, minimum=0), "minimum"),
+    ],
+)
+def test_bad_arguments_raise_value_error_naming_them(call, name):
+    with pytest.raises(ValueError, match=rf"^{name} "):
+        call()
