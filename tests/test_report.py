@@ -1,11 +1,13 @@
-"""The comparison report on tiny real studies: files, embedded figures, failures, colours, statistics, seed split.
+"""The comparison report on tiny real studies: files, embedded figures, failures, colours, statistics, seed split,
+task settings reported apart.
 
 The studies are real runs of ``qlab.experiment.run_experiment`` (Dock with a short start distance,
-tabular Q-learning, a 1,500-step budget), built once per module.
+tabular Q-learning, a budget of 1,000 or 1,500 steps), built once per module.
 """
 
 from __future__ import annotations
 
+import csv
 import json
 import re
 import shutil
@@ -19,8 +21,8 @@ from scipy.stats import trim_mean
 
 from qlab.compare import figures, stats
 from qlab.compare.report import main
-from qlab.compare.runs import START_AT_POTENTIAL_ARM, eval_matrix, load_study
-from qlab.compare.selection import select
+from qlab.compare.runs import MAX_SETTING_NAME, START_AT_POTENTIAL_ARM, eval_matrix, load_study, setting_folder
+from qlab.compare.selection import select, swept_keys
 from qlab.config import CONFIG_DIR, register_configs
 from qlab.experiment import run_experiment
 
@@ -51,6 +53,26 @@ def sweep(tmp_path_factory) -> Path:
     runs = [(f"alpha={a},seed={s}", [f"learner.step_size.start={a}", f"seed={s}", "budget_steps=1000"])
             for a in (0.05, 0.5) for s in range(4)]
     return build_study(tmp_path_factory.mktemp("sweep"), runs)
+
+
+#: the two task settings of the ``delay`` study: (start_distance_m override, report folder name)
+DELAYS = {"near": ("[8.0,12.0]", "task.start_distance_m=8.0-12.0"),
+          "far": ("[10.0,14.0]", "task.start_distance_m=10.0-14.0")}
+
+
+@pytest.fixture(scope="module")
+def delay(tmp_path_factory) -> Path:
+    """Two task settings (start distance ranges) x two shaping variants x two seeds, 1,000 steps."""
+    runs = [(f"delay={d},shaping={v},seed={s}",
+             [f"task.start_distance_m={DELAYS[d][0]}", f"shaping={v}", f"seed={s}", "budget_steps=1000"])
+            for d in DELAYS for v in ("none", "potential") for s in (0, 1)]
+    folder = tmp_path_factory.mktemp("delay")
+    register_configs()
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        base = [o for o in TINY if not o.startswith("task.start_distance_m=")]
+        for name, overrides in runs:
+            run_experiment(compose(config_name="config", overrides=base + overrides), folder / name, bar=False)
+    return folder
 
 
 @pytest.fixture(scope="module")
@@ -188,3 +210,111 @@ def test_sweep_reports_each_arm_on_seeds_it_was_not_chosen_on(sweep):
     assert main([str(sweep), "--no-diagnostics", "--selection-seeds", "3"]) == 0
     assert table(section((sweep / "report.md").read_text(), "Runs"))[0][3] == "0, 1, 2"
     assert main([str(sweep), "--no-diagnostics", "--selection-seeds", "0,1,2,3"]) == 2  # nothing left to report
+
+
+def read_eval(run: Path, tag: str) -> dict[int, float]:
+    """Evaluation ``tag`` by step, read straight from the run's metrics.csv."""
+    with (run / "metrics.csv").open(newline="") as fh:
+        return {int(r["step"]): float(r["value"]) for r in csv.DictReader(fh) if r["tag"] == f"eval/{tag}"}
+
+
+def shift_returns(run: Path, by: float) -> None:
+    """Add ``by`` to every evaluation discounted return of a run folder, in metrics.csv and summary.json."""
+    path = run / "metrics.csv"
+    with path.open(newline="") as fh:
+        rows = list(csv.DictReader(fh))
+    for row in rows:
+        if row["tag"] == "eval/discounted_return":
+            row["value"] = repr(float(row["value"]) + by)
+    with path.open("w", newline="") as fh:
+        writer = csv.DictWriter(fh, fieldnames=list(rows[0]))
+        writer.writeheader()
+        writer.writerows(rows)
+    summary = json.loads((run / "summary.json").read_text())
+    summary["final"]["discounted_return"] += by
+    (run / "summary.json").write_text(json.dumps(summary))
+
+
+def test_task_settings_get_their_own_reports_and_one_table_across(delay, monkeypatch):
+    saved = []
+    original = figures.save_png
+    monkeypatch.setattr(figures, "save_png", lambda fig, path: saved.append(fig) or original(fig, path))
+    assert main([str(delay), "--no-diagnostics"]) == 0
+    study = load_study(delay)
+    assert len(study.runs) == 8 and study.unreadable == []  # the report folders are not read as runs
+    markdown = (delay / "report.md").read_text()
+    page = (delay / "report.html").read_text()
+    folders = [folder for _, folder in DELAYS.values()]
+    assert re.findall(r"\]\(([^)]+)/report\.md\)", section(markdown, "Task settings")) == folders
+    for folder in folders:
+        assert f'href="{folder}/report.html"' in page
+        sub = (delay / folder / "report.md").read_text()
+        assert "**tabular**: no hyperparameter sweep" in sub  # the start distance is not a hyperparameter
+        assert {row[2] for row in table(section(sub, "Final performance"))} == {"2"}
+        assert (delay / folder / "report.html").exists()
+    rows = {row[1]: row for row in table(section(markdown, "Across task settings"))}
+    assert set(rows) == {"none", "potential"}
+    for arm, row in rows.items():
+        for column, delay_name in enumerate(DELAYS):
+            runs = sorted(delay.glob(f"delay={delay_name},shaping={arm},seed=*"))
+            success = [json.loads((r / "summary.json").read_text())["final"]["success_rate"] for r in runs]
+            # scipy.stats.trim_mean(x, 0.25) is the interquartile mean (Agarwal et al. 2021)
+            assert row[2 + 2 * column] == f"{trim_mean(success, 0.25):.2f}" == f"{stats.iqm(success):.2f}"
+            # first evaluation with success >= 0.5, a run that never reaches it at the 1,000-step budget
+            first = [min((s for s, v in read_eval(r, "success_rate").items() if v >= 0.5), default=None) for r in runs]
+            median = f"{np.median([1000 if f is None else f for f in first]):,.0f}"
+            censored = sum(f is None for f in first)
+            assert row[3 + 2 * column] == (f">= {median}" if 2 * censored >= len(runs) else median)
+    assert "![steps_by_task_setting](steps_by_task_setting.png)" in markdown
+    assert (delay / "steps_by_task_setting.png").read_bytes().startswith(PNG_SIGNATURE)
+    ax = saved[-1].axes[0]
+    assert ax.get_xlabel().startswith("task.start_distance_m")
+    # midpoints of [8, 12] and [10, 14]
+    assert {tuple(line.get_xdata()) for line in ax.get_lines()} == {(10.0, 12.0)}
+
+
+def test_swept_keys_ignore_task_settings(delay, sweep):
+    study = load_study(delay)
+    assert swept_keys(study.runs) == []
+    assert swept_keys(load_study(sweep).runs) == ["learner.step_size.start"]
+    with pytest.raises(ValueError, match="task setting"):
+        select(study, "tabular")  # runs of two task settings are never pooled
+
+
+def test_failures_score_the_worst_return_of_their_task_setting(delay, tmp_path):
+    broken = Path(shutil.copytree(delay, tmp_path / "broken"))
+    for run in broken.glob("delay=*"):
+        shift_returns(run, -1.0 if "delay=near" in run.name else -3.0)  # negative returns, the far ones lower
+    diverged = broken / "delay=near,shaping=potential,seed=1"
+    summary = json.loads((diverged / "summary.json").read_text())
+    summary.update(status="diverged", diverged_at_step=500)
+    (diverged / "summary.json").write_text(json.dumps(summary))
+    crashed = broken / "delay=near,shaping=none,seed=0"
+    (crashed / "FINISHED").unlink()
+    near = [r for r in sorted(broken.glob("delay=near,*")) if r not in (diverged, crashed)]
+    # the rule (qlab/compare/runs.py docstring): min(0, worst observed in the same task setting), read from the files
+    worst_final = min(0.0, *(json.loads((r / "summary.json").read_text())["final"]["discounted_return"] for r in near))
+    observed = [read_eval(r, "discounted_return") for r in [*near, crashed]]
+    worst = {step: min(0.0, *(o[step] for o in observed if step in o)) for step in (500, 1000)}
+    assert worst_final < 0.0  # scoring the failure 0 would flatter it
+    runs = {r.name: r for r in load_study(broken).runs}
+    run = runs[diverged.name]
+    assert run.final["success_rate"] == 0.0
+    assert run.final["discounted_return"] == pytest.approx(worst_final)
+    assert runs[crashed.name].final["discounted_return"] == pytest.approx(worst_final)
+    curve = eval_matrix([run], "discounted_return", np.array([0, 500, 1000]))[0]
+    assert curve.tolist() == pytest.approx([read_eval(diverged, "discounted_return")[0], worst[500], worst[1000]])
+    assert eval_matrix([run], "success_rate", np.array([500, 1000]))[0].tolist() == [0.0, 0.0]
+    assert main([str(broken), "--no-diagnostics"]) == 0
+    final = {row[1]: row for row in table(section((broken / DELAYS["near"][1] / "report.md").read_text(),
+                                                  "Final performance"))}
+    kept = json.loads((broken / "delay=near,shaping=potential,seed=0" / "summary.json").read_text())
+    assert final["potential"][4].split(" [")[0] == f"{stats.iqm([kept['final']['discounted_return'], worst_final]):.3f}"
+
+
+def test_setting_folder_names_are_short_safe_and_distinct():
+    names = [setting_folder({"task.id": "qlab/Dock-v0", "task.start_distance_m": (10.0 + i, 20.0)}) for i in range(2)]
+    names += [setting_folder({"task.schedule_k": tuple(range(60 + i))}) for i in range(2)]  # far over the limit
+    assert len(set(names)) == len(names)
+    assert all(len(n) <= MAX_SETTING_NAME and re.fullmatch(r"[A-Za-z0-9=,._+\-]+", n) for n in names)
+    assert names[0] == setting_folder({"task.id": "qlab/Dock-v0", "task.start_distance_m": (10.0, 20.0)})

@@ -5,23 +5,46 @@ the reported runs (:mod:`qlab.compare.selection`), computes the statistics
 (:mod:`qlab.compare.measures`), draws the figures (:mod:`qlab.compare.figures`), adds exact
 Q-function diagnostics and the shaping audit where an exact answer exists
 (:mod:`qlab.compare.exact`) and writes the report beside the figures.
+
+Task settings are never compared as if they were hyperparameters: when the runs differ in a
+``task.*`` key, each task setting gets its own full report in a subfolder named after it, and the
+top-level report lists the settings with links and sets the arms side by side across them (IQM
+final success, median steps to threshold, and a figure of the steps against the setting when
+one numeric task key varies).
 """
 
 from __future__ import annotations
 
 import argparse
+import re
 import sys
 from pathlib import Path
+
+from matplotlib.backends.backend_agg import FigureCanvasAgg
+from matplotlib.figure import Figure
 
 from qlab.compare import exact, figures
 from qlab.compare.markup import markdown_to_html
 from qlab.compare.measures import ArmMeasures, Estimate, learner_measures
-from qlab.compare.runs import Study, load_study
+from qlab.compare.runs import (
+    FAILURE_RULE,
+    REPORT_MD,
+    Study,
+    TaskSetting,
+    arm_sort_key,
+    load_study,
+    position,
+    split_by_task,
+)
 from qlab.compare.selection import Selection, parse_seeds, select
 from qlab.compare.stats import few_seeds_warning
 from qlab.recording import atomic_write_text
 
-REPORT_MD, REPORT_HTML = "report.md", "report.html"
+REPORT_HTML = "report.html"
+#: the figure of steps to threshold against the task setting (top-level report of a study with several settings)
+SETTINGS_FIGURE = "steps_by_task_setting.png"
+# a Markdown link to a report page: markup.py has no links, so the HTML page gets them here
+_REPORT_LINK = re.compile(r"\[([^\]\[<>]+)\]\(([^()\s\"<>]*)report\.(?:md|html)\)")
 CAUTION = ("> Caution: these results come from simulation only. A controller learned here is not fit for real "
            "plant as it is; validate it under local codes and licensed engineering practice.")
 
@@ -72,7 +95,7 @@ def summary_lines(study: Study, measures: dict[str, dict[str, ArmMeasures]], thr
     n_div = sum(r.status == "diverged" for r in study.runs)
     n_crash = sum(r.status == "crashed" for r in study.runs)
     lines.append(f"- {len(study.runs)} runs read: {n_div} diverged, {n_crash} crashed or unfinished "
-                 "(failures count as success 0 and return 0 from their failure step on, never dropped).")
+                 f"(failure scores: {FAILURE_RULE}).")
     for learner, ms in measures.items():
         fast, tied = _fastest(ms)
         ties = f" (tied on median steps with {', '.join(f'`{a}`' for a in tied)})" if tied else ""
@@ -202,11 +225,147 @@ def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: fl
     return [*lines, ""]
 
 
+def _html_page(text: str, title: str, out: Path) -> str:
+    """The HTML page of ``text``, its links to other reports pointing at their HTML pages."""
+    page = markdown_to_html(text, title, out)
+    return _REPORT_LINK.sub(lambda m: f'<a href="{m.group(2)}{REPORT_HTML}">{m.group(1)}</a>', page)
+
+
+def _write_pages(lines: list[str], title: str, out: Path) -> Path:
+    text = "\n".join(lines).rstrip() + "\n"
+    md_path = out / REPORT_MD
+    atomic_write_text(md_path, text)
+    atomic_write_text(out / REPORT_HTML, _html_page(text, f"qlab report: {title}", out))
+    return md_path
+
+
+def write_report(
+    study: Study, out: Path, title: str, threshold: float, selection_seeds: list[int] | None, grid: int,
+    diagnostics: bool, context: list[str] | None = None,
+) -> dict[str, dict[str, ArmMeasures]]:
+    """Write the full report of ``study`` (runs of one task setting) into ``out``; returns its measures.
+
+    ``context`` lines follow the caution (e.g. which task setting this is).
+    """
+    out.mkdir(parents=True, exist_ok=True)
+    selections = {lr: select(study, lr, selection_seeds) for lr in study.learners()}
+    measures = {lr: learner_measures(sel, threshold) for lr, sel in selections.items()}
+    lines = [f"# Comparison report: {title}", "", CAUTION, "", *(context or [])]
+    lines += summary_lines(study, measures, threshold)
+    lines += _seed_warning(measures)
+    lines += runs_lines(study, selections, selection_seeds)
+    lines += performance_lines(measures, threshold, out)
+    if diagnostics:
+        lines += exact.diagnostics_lines(study, selections, grid, out)
+    else:
+        lines += ["## Q-function diagnostics", "", "Skipped (`--no-diagnostics`).", ""]
+    _write_pages(lines, title, out)
+    return measures
+
+
+def _figure_key(settings: list[TaskSetting]) -> str | None:
+    """The one varying task key when its values lie on a number line at distinct points; else None."""
+    keys = {k for s in settings for k in s.values}
+    if len(keys) != 1:
+        return None
+    key = keys.pop()
+    xs = [position(s.values[key]) for s in settings]
+    return key if None not in xs and len(set(xs)) == len(xs) else None
+
+
+def settings_figure(
+    settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], key: str, threshold: float,
+) -> Figure:
+    """Median steps to threshold against the task key's value (list midpoints), one panel per learner.
+
+    Filled markers: reached by more than half the runs; hollow: a lower bound (censored at the budget).
+    """
+    learners = sorted({lr for ms in measures for lr in ms})
+    fig = Figure(figsize=(figures.PANEL[0] * len(learners), figures.PANEL[1] + 0.3), layout="constrained")
+    FigureCanvasAgg(fig)
+    xs = [position(s.values[key]) for s in settings]
+    for ax, learner in zip(fig.subplots(1, len(learners), squeeze=False)[0], learners, strict=True):
+        arms = sorted({a for ms in measures for a in ms.get(learner, {})}, key=arm_sort_key)
+        for arm in arms:
+            points = [(x, ms[learner][arm]) for x, ms in zip(xs, measures, strict=True) if arm in ms.get(learner, {})]
+            colour = figures.arm_colour(arm)
+            x = [p for p, _ in points]
+            y = [m.median_threshold_steps() for _, m in points]
+            bound = [2 * m.n_censored >= m.n_runs for _, m in points]
+            ax.plot(x, y, color=colour, linewidth=1.6, label=arm)
+            ax.scatter(x, y, s=30, zorder=3, edgecolors=colour, linewidths=1.4,
+                       facecolors=["white" if b else colour for b in bound])
+        ax.spines[["top", "right"]].set_visible(False)
+        ax.grid(True, axis="y", color="#e4e4e4", linewidth=0.8)
+        ax.set_axisbelow(True)
+        ax.set_ylim(bottom=0)
+        ax.set_xticks(xs, [f"{x:g}" for x in xs])
+        ax.tick_params(labelsize=8)
+        ranged = any(isinstance(s.values[key], tuple) for s in settings)
+        ax.set_xlabel(f"{key} (midpoint of the range)" if ranged else key, fontsize=8.5)
+        ax.set_ylabel(f"median environment steps to success >= {threshold:g}", fontsize=8.5)
+        ax.set_title(f"{learner} (hollow: lower bound)", loc="left", fontsize=9.5, fontweight="bold")
+        ax.legend(fontsize=7.5, frameon=False)
+    return fig
+
+
+def overview_lines(
+    study: Study, settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], threshold: float,
+    out: Path,
+) -> list[str]:
+    """The top-level report of a study with several task settings: the settings, linked, and one table across them."""
+    keys = sorted({k for s in settings for k in s.values})
+    shown = ", ".join(f"`{k}`" for k in keys)
+    lines = [f"# Comparison report: {study.name}", "", CAUTION, "",
+             f"{len(study.runs)} runs read in {len(settings)} task settings: the runs differ in {shown}. Different "
+             "task settings are different problems, so each has its own full report and nothing is chosen across "
+             "them (a hyperparameter sweep, if any, is resolved within each setting).", "", "## Task settings", ""]
+    for s in settings:
+        n_div = sum(r.status == "diverged" for r in s.study.runs)
+        n_crash = sum(r.status == "crashed" for r in s.study.runs)
+        lines.append(f"- [{s.folder}]({s.folder}/{REPORT_MD}): {s.label}; {len(s.study.runs)} runs "
+                     f"({', '.join(s.study.learners())}; arms {', '.join(s.study.arms())}), {n_div} diverged, "
+                     f"{n_crash} crashed or unfinished.")
+    lines += ["", "## Across task settings", "",
+              f"Per learner and arm, in each task setting (columns by {shown}): the interquartile mean (IQM) of the "
+              f"final success rate over the reported runs, and the median environment steps to a success rate >= "
+              f"{threshold:g}. Runs that never reach it count at the budget; `>=` marks a lower bound (half or more "
+              f"of the runs never reached it). Failure scores: {FAILURE_RULE}. Intervals and the rest are in each "
+              "setting's report.", ""]
+    lines += _seed_warning({f"{i}/{lr}": ms for i, m in enumerate(measures) for lr, ms in m.items()})
+    header = "| learner | arm | " + " | ".join(f"{s.short_label}: IQM final success | {s.short_label}: median steps"
+                                               for s in settings) + " |"
+    lines += [header, "|---|---|" + "---|---|" * len(settings)]
+    pairs = sorted({(lr, a) for m in measures for lr, ms in m.items() for a in ms},
+                   key=lambda p: (p[0], arm_sort_key(p[1])))
+    for lr, arm in pairs:
+        cells = []
+        for m in measures:
+            am = m.get(lr, {}).get(arm)
+            cells += [f"{am.iqm_success.value:.2f}", _median_steps(am)] if am else ["not run", "not run"]
+        lines.append(f"| {lr} | {arm} | " + " | ".join(cells) + " |")
+    lines.append("")
+    key = _figure_key(settings)
+    if key is not None:
+        lines.append(_write_figure(settings_figure(settings, measures, key, threshold), out, SETTINGS_FIGURE))
+    else:
+        lines.append("No figure across settings: it needs exactly one varying task key whose values are numbers or "
+                     "lists of numbers (drawn at their midpoints) at distinct points.")
+    lines.append("")
+    if study.unreadable:
+        lines += [f"- Folders without a config.yaml, not read as runs: {', '.join(study.unreadable)}.", ""]
+    return lines
+
+
 def build_report(
     study_dir: str | Path, out_dir: str | Path | None = None, threshold: float = 0.5,
     selection_seeds: list[int] | None = None, grid: int = 61, diagnostics: bool = True,
 ) -> Path:
-    """Write ``report.md``, ``report.html`` and the PNG figures for the study; returns the report.md path."""
+    """Write ``report.md``, ``report.html`` and the PNG figures for the study; returns the report.md path.
+
+    With several task settings, each gets a full report in a subfolder of ``out_dir`` named after
+    it, and the top-level report links them and compares the arms across settings.
+    """
     if not 0.0 <= threshold <= 1.0:
         raise ValueError(f"threshold must lie in [0, 1] (a success rate), got {threshold!r}")
     if int(grid) != grid or grid < 2:
@@ -216,22 +375,21 @@ def build_report(
         raise ValueError(f"study folder {str(study.path)!r} holds no run folders (with a config.yaml)")
     out = Path(out_dir) if out_dir is not None else study.path
     out.mkdir(parents=True, exist_ok=True)
-    selections = {lr: select(study, lr, selection_seeds) for lr in study.learners()}
-    measures = {lr: learner_measures(sel, threshold) for lr, sel in selections.items()}
-    lines = [f"# Comparison report: {study.name}", "", CAUTION, ""]
-    lines += summary_lines(study, measures, threshold)
-    lines += _seed_warning(measures)
-    lines += runs_lines(study, selections, selection_seeds)
-    lines += performance_lines(measures, threshold, out)
-    if diagnostics:
-        lines += exact.diagnostics_lines(study, selections, grid, out)
-    else:
-        lines += ["## Q-function diagnostics", "", "Skipped (`--no-diagnostics`).", ""]
-    text = "\n".join(lines).rstrip() + "\n"
-    md_path = out / REPORT_MD
-    atomic_write_text(md_path, text)
-    atomic_write_text(out / REPORT_HTML, markdown_to_html(text, f"qlab report: {study.name}", out))
-    return md_path
+    settings = split_by_task(study)
+    if len(settings) == 1:
+        write_report(study, out, study.name, threshold, selection_seeds, grid, diagnostics)
+        return out / REPORT_MD
+    for s in settings:
+        if (out / s.folder / "config.yaml").exists():
+            raise ValueError(f"out_dir must not hold a run folder named like a task setting's report, got "
+                             f"{str(out / s.folder)!r}")
+    measures = []
+    for s in settings:
+        context = [f"Task setting: {s.label} ({len(settings)} settings in study {study.name}; overview and "
+                   f"comparison across settings: [{study.name}](../{REPORT_MD})).", ""]
+        measures.append(write_report(s.study, out / s.folder, f"{study.name}, {s.label}", threshold,
+                                     selection_seeds, grid, diagnostics, context))
+    return _write_pages(overview_lines(study, settings, measures, threshold, out), study.name, out)
 
 
 def _parser() -> argparse.ArgumentParser:

@@ -6,13 +6,23 @@ A study folder holds one folder per run (names starting with ``.`` are skipped).
 * ``diverged``: marker present, summary status ``diverged`` (fails from ``diverged_at_step`` on);
 * ``crashed``: no marker (killed or still running; fails after its last recorded step).
 
-Diverged and crashed runs are failures: success 0 and discounted return 0 from their failure
-step on, and 0 as final scores. They stay in every statistic; the report counts them.
+Diverged and crashed runs are failures and stay in every statistic (the report counts them).
+From its failure step on, and as its final scores, a failed run scores success 0 and, as its
+discounted return, the lower of 0 and the worst return observed at the same evaluation step (the
+final evaluation for the final score) among all runs of the same task setting:
+``min(0, worst observed)``. A failure is thus never scored above the worst real run, even
+where returns are negative (the linear-quadratic task), and never above 0. Values a failed run
+recorded from its failure step on are not observations.
+
+Runs of different task settings (``task.*`` keys) are different problems:
+:func:`split_by_task` partitions a study by task setting.
 """
 
 from __future__ import annotations
 
+import hashlib
 import json
+import re
 from dataclasses import dataclass, field
 from pathlib import Path
 from typing import Any
@@ -22,8 +32,18 @@ from omegaconf import DictConfig, OmegaConf
 
 from qlab.recording import MARKER, SUMMARY, read_metrics
 
-#: the scores a failed run loses (set to 0 from its failure step on)
+#: the scores a failed run loses from its failure step on (see the module docstring)
 SCORES = ("success_rate", "discounted_return")
+#: the failure-score rule in one sentence, as the report states it
+FAILURE_RULE = ("from its failure step on, a diverged or crashed run scores success 0 and, as discounted return, "
+                "the lower of 0 and the worst return any run of the same task setting showed at that evaluation "
+                "(min(0, worst observed)); failures are never dropped")
+#: prefix of the config keys that describe the task (not hyperparameters: a different task setting is another problem)
+TASK_PREFIX = "task."
+#: the report file of a study or of one task setting (a folder holding one is not a run)
+REPORT_MD = "report.md"
+#: longest task-setting folder name kept readable as it is; longer names are cut and get a digest
+MAX_SETTING_NAME = 100
 #: config keys that say where or how a run executes, not what it computes
 EXECUTION_KEYS = ("study_name", "results_dir", "tensorboard", "torch_threads", "checkpoint_every_episodes")
 #: arm of a run trained on the task's own reward with Q started at the potential (Wiewiora 2003)
@@ -72,6 +92,8 @@ class Run:
     failure_step: int | None  # first environment step at which a failed run counts as failed
     final: dict[str, float]  # final evaluation (scores 0 for a failed run)
     evals: dict[str, tuple[np.ndarray, np.ndarray]] = field(repr=False)  # eval tag -> (steps, values)
+    # (steps, discounted return) a failed run scores from its failure step on; None: 0 (see score_failures)
+    failure_return: tuple[np.ndarray, np.ndarray] | None = field(default=None, repr=False)
     flat: dict[str, Any] = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -106,9 +128,13 @@ class Run:
         return str(self.flat["task.id"])
 
     def setting(self) -> dict[str, Any]:
-        """Config keys that make up its hyperparameter setting (all but seed, shaping and execution keys)."""
-        return {k: v for k, v in self.flat.items()
-                if k != "seed" and not k.startswith("shaping.") and k.split(".")[0] not in EXECUTION_KEYS}
+        """Config keys that make up its hyperparameter setting (all but seed, shaping, task and execution keys)."""
+        return {k: v for k, v in self.flat.items() if k != "seed" and not k.startswith(("shaping.", TASK_PREFIX))
+                and k.split(".")[0] not in EXECUTION_KEYS}
+
+    def task_setting(self) -> tuple[tuple[str, Any], ...]:
+        """The ``task.*`` keys and values of its config, sorted by key (hashable)."""
+        return tuple(sorted((k, v) for k, v in self.flat.items() if k.startswith(TASK_PREFIX)))
 
 
 @dataclass
@@ -142,7 +168,11 @@ def _status(path: Path) -> tuple[str, dict[str, Any] | None]:
 
 
 def load_run(path: Path) -> Run:
-    """Read one run folder; ``ValueError`` if it has no ``config.yaml``."""
+    """Read one run folder; ``ValueError`` if it has no ``config.yaml``.
+
+    A failed run's discounted return is 0 here; :func:`score_failures` (called by
+    :func:`load_study`) scores it against the runs of its task setting.
+    """
     path = Path(path)
     if not (path / "config.yaml").exists():
         raise ValueError(f"run folder {str(path)!r} has no config.yaml")
@@ -169,8 +199,43 @@ def load_run(path: Path) -> Run:
     return Run(path.name, path, config, status, failure_step, final, evals)
 
 
+def _observed_returns(run: Run) -> tuple[np.ndarray, np.ndarray]:
+    """(steps, discounted returns) the run recorded before its failure step (all of them if it finished)."""
+    if "discounted_return" not in run.evals:
+        return np.empty(0, dtype=np.int64), np.empty(0)
+    steps, values = run.evals["discounted_return"]
+    keep = np.isfinite(values) & (steps < (run.failure_step if run.failure_step is not None else np.inf))
+    return steps[keep], values[keep]
+
+
+def score_failures(runs: list[Run]) -> None:
+    """Give each failed run of ``runs`` its discounted-return scores: ``min(0, worst observed)`` per evaluation step.
+
+    The worst is taken over the runs of the same task setting, at each evaluation step (for the
+    final score: over the final scores of the finished runs). Success stays 0.
+    """
+    groups: dict[tuple, list[Run]] = {}
+    for run in runs:
+        groups.setdefault(run.task_setting(), []).append(run)
+    for group in groups.values():
+        observed = [_observed_returns(r) for r in group]
+        grid, at = np.unique(np.concatenate([s for s, _ in observed]), return_inverse=True)
+        worst = np.zeros(grid.size)
+        np.minimum.at(worst, at, np.concatenate([v for _, v in observed]))
+        finals = [r.final["discounted_return"] for r in group if not r.failed]
+        worst_final = float(min([0.0, *(v for v in finals if np.isfinite(v))]))
+        for run in group:
+            if run.failed:
+                run.failure_return = (grid, worst)
+                run.final.update(success_rate=0.0, discounted_return=worst_final)
+
+
 def load_study(folder: str | Path) -> Study:
-    """Every run folder of a study (folders whose names start with ``.`` are skipped)."""
+    """Every run folder of a study, failures scored (folders starting with ``.`` and report folders skipped).
+
+    A folder without a ``config.yaml`` but with a ``report.md`` is a report of one task setting
+    (written by ``qlab-report``), not a run, and is skipped silently.
+    """
     path = Path(folder)
     if not path.is_dir():
         raise ValueError(f"study folder {str(path)!r} does not exist or is not a folder")
@@ -178,8 +243,9 @@ def load_study(folder: str | Path) -> Study:
     for child in sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith(".")):
         if (child / "config.yaml").exists():
             runs.append(load_run(child))
-        else:
+        elif not (child / REPORT_MD).exists():
             unreadable.append(child.name)
+    score_failures(runs)
     return Study(path, runs, unreadable)
 
 
@@ -187,19 +253,28 @@ def eval_matrix(runs: list[Run], tag: str, steps: np.ndarray) -> np.ndarray:
     """Evaluation ``tag`` of each run at ``steps``, shape ``(n_runs, T)``.
 
     Each run's latest evaluation at or before a step is held until its next one. From a failed
-    run's failure step on, scores (:data:`SCORES`) are 0 and other tags NaN; before its first
-    evaluation a run is NaN.
+    run's failure step on, success is 0, the discounted return is the failure score (the latest
+    of ``run.failure_return`` at or before the step, 0 before its first or without one) and
+    other tags NaN; before its first evaluation a run is NaN.
     """
     grid = np.asarray(steps, dtype=np.int64)
     out = np.full((len(runs), grid.size), np.nan)
     for i, run in enumerate(runs):
         if tag in run.evals:
-            s, v = run.evals[tag]
-            at = np.searchsorted(s, grid, side="right") - 1
-            out[i] = np.where(at >= 0, v[np.maximum(at, 0)], np.nan)
+            out[i] = _held(*run.evals[tag], grid, np.nan)
         if run.failure_step is not None:
-            out[i, grid >= run.failure_step] = 0.0 if tag in SCORES else np.nan
+            failed = grid >= run.failure_step
+            if tag == "discounted_return" and run.failure_return is not None:
+                out[i, failed] = _held(*run.failure_return, grid[failed], 0.0)
+            else:
+                out[i, failed] = 0.0 if tag in SCORES else np.nan
     return out
+
+
+def _held(steps: np.ndarray, values: np.ndarray, grid: np.ndarray, before: float) -> np.ndarray:
+    """``values`` recorded at sorted ``steps``, each held until the next, read at ``grid``; ``before`` earlier."""
+    at = np.searchsorted(steps, grid, side="right") - 1
+    return np.where(at >= 0, values[np.maximum(at, 0)], before) if steps.size else np.full(grid.size, before)
 
 
 def eval_steps(runs: list[Run]) -> np.ndarray:
@@ -209,3 +284,96 @@ def eval_steps(runs: list[Run]) -> np.ndarray:
     if not steps:
         return np.array([0], dtype=np.int64)
     return np.unique(np.concatenate(steps))
+
+
+def task_keys(runs: list[Run]) -> list[str]:
+    """The ``task.*`` keys whose values differ between ``runs``, sorted."""
+    settings = [dict(r.task_setting()) for r in runs]
+    keys = sorted(set().union(*settings)) if settings else []
+    return [k for k in keys if len({repr(s.get(k)) for s in settings}) > 1]
+
+
+def position(value: Any) -> float | None:
+    """Where a task value lies on a number line: a number itself, a list of numbers its midpoint; else None."""
+    def number(v: Any) -> bool:
+        return isinstance(v, int | float) and not isinstance(v, bool) and np.isfinite(v)
+
+    if number(value):
+        return float(value)
+    if isinstance(value, tuple) and value and all(number(v) for v in value):
+        return (min(value) + max(value)) / 2.0
+    return None
+
+
+def format_value(value: Any) -> str:
+    """A config value as a person writes it: lists in brackets, ``None`` as ``absent``."""
+    if value is None:
+        return "absent"
+    if isinstance(value, tuple):
+        return "[" + ", ".join(format_value(v) for v in value) + "]"
+    return str(value)
+
+
+def _plain(value: Any) -> str:
+    return "-".join(_plain(v) for v in value) if isinstance(value, tuple) else str(value)
+
+
+def _digest(text: str, n: int = 10) -> str:
+    return hashlib.sha256(text.encode()).hexdigest()[:n]
+
+
+@dataclass
+class TaskSetting:
+    """One task setting of a study: the values of the task keys that differ in the study, and its runs."""
+
+    values: dict[str, Any]  # differing task key -> value (None where absent)
+    folder: str  # folder name of its report ("" when the study has one task setting)
+    study: Study
+
+    @property
+    def label(self) -> str:
+        """E.g. ``task.start_distance_m=[10.0, 20.0]`` (absent keys left out)."""
+        return ", ".join(f"{k}={format_value(v)}" for k, v in self.values.items() if v is not None) or "defaults"
+
+    @property
+    def short_label(self) -> str:
+        """The value alone when one key differs, else ``key=value`` pairs without the ``task.`` prefix."""
+        if len(self.values) == 1:
+            return format_value(next(iter(self.values.values())))
+        return ", ".join(f"{k.removeprefix(TASK_PREFIX)}={format_value(v)}" for k, v in self.values.items()
+                         if v is not None) or "defaults"
+
+
+def setting_folder(values: dict[str, Any]) -> str:
+    """Folder name of a task setting, e.g. ``task.start_distance_m=10.0-20.0``: file-name safe, at most
+    :data:`MAX_SETTING_NAME` characters (a longer one is cut and ends in a digest of the whole)."""
+    text = ",".join(f"{k}={_plain(v)}" for k, v in values.items() if v is not None)
+    name = re.sub(r"[^A-Za-z0-9=,._+\-]", "_", text) or "task"
+    if len(name) > MAX_SETTING_NAME:
+        name = f"{name[: MAX_SETTING_NAME - 12]}..{_digest(repr(sorted(values.items())))}"
+    return name
+
+
+def _order(values: dict[str, Any]) -> tuple:
+    """Sort key of a task setting: numbers (and list midpoints) by value, other values by their text."""
+    return tuple((0, p, repr(v)) if (p := position(v)) is not None else (1, 0.0, repr(v)) for v in values.values())
+
+
+def split_by_task(study: Study) -> list[TaskSetting]:
+    """The study's runs partitioned by task setting, ordered by the differing keys' values.
+
+    One setting (folder ``""``) when no ``task.*`` key differs. Folder names that would collide
+    after sanitising get a digest of their values appended.
+    """
+    keys = task_keys(study.runs)
+    groups: dict[str, tuple[dict[str, Any], list[Run]]] = {}
+    for run in study.runs:
+        values = {k: dict(run.task_setting()).get(k) for k in keys}
+        groups.setdefault(repr(values), (values, []))[1].append(run)
+    ordered = sorted(groups.values(), key=lambda g: _order(g[0]))
+    folders = [setting_folder(values) if keys else "" for values, _ in ordered]
+    clashes = {f for f in folders if folders.count(f) > 1}
+    folders = [f"{f}..{_digest(repr(sorted(v.items())))}" if f in clashes else f
+               for f, (v, _) in zip(folders, ordered, strict=True)]
+    return [TaskSetting(values, folder, Study(study.path, runs, []))
+            for folder, (values, runs) in zip(folders, ordered, strict=True)]

@@ -1,7 +1,10 @@
 """Hyperparameter sweeps: pick each arm's best setting on selection seeds, report on the others.
 
 A learner's runs sweep hyperparameters when any config key other than the seed, the shaping
-keys and the execution keys differs between them. Each (learner, arm) is then compared at its
+keys, the task keys and the execution keys differs between them. Task keys (``task.*``) are not
+hyperparameters: a different task setting is a different problem, never a setting to pick the
+best of, so a study is split by task setting first (:func:`qlab.compare.runs.split_by_task`)
+and :func:`select` refuses runs of several task settings. Each (learner, arm) is then compared at its
 own best setting, chosen by the interquartile mean of final success on the selection seeds
 (ties: final discounted return, then the setting's label), and reported only on the remaining
 seeds, so the choice does not flatter the reported numbers. Without a sweep every seed is
@@ -12,7 +15,7 @@ from __future__ import annotations
 
 from dataclasses import dataclass
 
-from qlab.compare.runs import Run, Study, arm_sort_key
+from qlab.compare.runs import Run, Study, arm_sort_key, task_keys
 from qlab.compare.stats import iqm
 
 
@@ -33,7 +36,7 @@ class Selection:
 
 
 def swept_keys(runs: list[Run]) -> list[str]:
-    """Setting keys whose values differ between ``runs``."""
+    """Hyperparameter keys whose values differ between ``runs`` (never ``task.*``: see :meth:`Run.setting`)."""
     settings = [r.setting() for r in runs]
     keys = sorted(set().union(*settings)) if settings else []
     return [k for k in keys if len({repr(s.get(k)) for s in settings}) > 1]
@@ -85,6 +88,10 @@ def select(study: Study, learner: str, selection_seeds: list[int] | None = None)
     runs = [r for r in study.runs if r.learner == learner]
     if not runs:
         raise ValueError(f"learner must be one of {study.learners()}, got {learner!r}")
+    differing = task_keys(runs)
+    if differing:
+        raise ValueError(f"the runs of learner {learner!r} must share one task setting (split the study with "
+                         f"split_by_task first), got differing task keys {differing}")
     keys = swept_keys(runs)
     arms = sorted({r.arm for r in runs}, key=arm_sort_key)
     if not keys:
