@@ -75,6 +75,8 @@ def _speed_ratio(fast: ArmMeasures, base: ArmMeasures) -> str:
     if fast_bound:
         return "reaches the threshold in at most half of its runs within the budget"
     ratio = base.median_threshold_steps() / max(fast.median_threshold_steps(), 1.0)
+    if ratio == 1.0 and not base_bound:
+        return "the same median steps as `none`"
     if ratio >= 1.0:
         return f"{'at least ' if base_bound else ''}{ratio:.1f} times fewer steps than `none` (median runs)"
     if base_bound:
