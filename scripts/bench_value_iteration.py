@@ -1,8 +1,9 @@
 """Benchmark: vectorised value iteration against a plain per-state loop, and sweep cost vs MDP size.
 
-Both parts use a random sparse MDP shaped like a grid model of Dock: states laid out on a 2-D
-grid, 5 actions, and each next state spread by interpolation over 4 neighbouring grid nodes
-(4 nonzeros per row of P[a]). Prints two tables. Timings only; nothing here is a test.
+The loop comparison uses a random sparse MDP shaped like a grid model of Dock (states on a 2-D
+grid, 5 actions, each next state spread over 4 neighbouring nodes); the scaling table uses the
+real Dock grid model (qlab.reference.dock_grid) from 1e3 to 1e6 nodes. Timings only; nothing
+here is a test.
 
     python scripts/bench_value_iteration.py --loop-states 10000 --sizes 1000 10000 100000 1000000
 """
@@ -15,7 +16,9 @@ import time
 import numpy as np
 import scipy.sparse as sp
 
+from qlab.reference.dock_grid import DockGrid
 from qlab.reference.finite_mdp import TransitionModel
+from qlab.tasks.dock import Dock
 
 GAMMA = 0.99
 
@@ -83,25 +86,28 @@ def compare_with_loop(n_states: int, n_actions: int, n_sweeps: int, seed: int) -
     print(f"speed ratio: {loop_s / fast_s:.0f}x   max |V_vectorised - V_loop| = {np.max(np.abs(V_fast - V_loop)):.2e}")
 
 
-def sweep_scaling(sizes: list[int], n_actions: int, repeats: int, seed: int) -> None:
-    """Print build time and time per sweep as the number of states grows."""
-    print(f"\nOne sweep vs size ({n_actions} actions, 4 nonzeros per row, median of {repeats} sweeps)")
-    print(f"{'states':>10}{'nonzeros':>12}{'build+check s':>15}{'ms / sweep':>12}{'ns / state':>12}")
-    for n_states in sizes:
-        mats, R = dock_like_mdp(n_states, n_actions, np.random.default_rng(seed))
+def sweep_scaling(sizes: list[int], repeats: int) -> None:
+    """Print build time and time per sweep as the Dock grid model grows (the real task, default parameters)."""
+    print(f"\nOne sweep vs size of the Dock grid model (default Dock, median of {repeats} sweeps)")
+    print(f"{'nodes':>10}{'grid':>13}{'nonzeros':>12}{'build s':>10}{'ms / sweep':>12}{'ns / node':>12}")
+    for n_nodes in sizes:
+        n_velocity = max(2, round(np.sqrt(n_nodes / 2)))
+        n_position = max(2, round(n_nodes / n_velocity))
         start = time.perf_counter()
-        model = TransitionModel.build(mats)
+        grid = DockGrid(Dock(), n_position, n_velocity)
+        model = TransitionModel.build(grid.transitions)
         build_s = time.perf_counter() - start
-        rewards_by_action = np.ascontiguousarray(R.T)
-        V = np.zeros(n_states)
+        rewards_by_action = np.ascontiguousarray(grid.rewards("none", GAMMA).T)
+        V = np.zeros(model.n_states)
         times = []
         for _ in range(repeats):
             start = time.perf_counter()
             V = model.backup_by_action(rewards_by_action, GAMMA, V).max(axis=0)
             times.append(time.perf_counter() - start)
         sweep_s = float(np.median(times))
-        nnz = model.stacked.nnz
-        print(f"{n_states:>10}{nnz:>12}{build_s:>15.3f}{1e3 * sweep_s:>12.3f}{1e9 * sweep_s / n_states:>12.1f}")
+        shape = f"{n_position}x{n_velocity}"
+        print(f"{grid.n_grid:>10}{shape:>13}{model.stacked.nnz:>12}{build_s:>10.2f}{1e3 * sweep_s:>12.3f}"
+              f"{1e9 * sweep_s / grid.n_grid:>12.1f}")
 
 
 def main() -> None:
@@ -119,7 +125,7 @@ def main() -> None:
     if min(args.sizes) < 4:
         parser.error("--sizes must all be at least 4 states")
     compare_with_loop(args.loop_states, args.actions, args.sweeps, args.seed)
-    sweep_scaling(args.sizes, args.actions, args.repeats, args.seed)
+    sweep_scaling(args.sizes, args.repeats)
 
 
 if __name__ == "__main__":

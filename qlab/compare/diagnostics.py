@@ -25,7 +25,7 @@ from numpy.typing import ArrayLike
 
 from qlab.learners.linear import LinearQ, least_squares_weights
 from qlab.learners.lstdq import LSTDQ
-from qlab.learners.qnet import QNetLearner, _mlp
+from qlab.learners.qnet import QNetLearner, build_mlp
 from qlab.reference.dock_grid import DockGrid
 from qlab.reference.finite_mdp import TransitionModel, evaluate_policy, value_iteration
 from qlab.reference.lq import check_lq_matrices, cost_to_go_matrix, gain_q_matrix, lq_solution
@@ -190,7 +190,7 @@ def _network_fit(learner: QNetLearner, ref: GridReference, steps: int) -> np.nda
     torch.set_num_threads(1)
     try:
         generator = torch.Generator().manual_seed(NETWORK_FIT_SEED)
-        net = _mlp(learner.obs_dim, learner.config.hidden_sizes, learner.n_actions, generator)
+        net = build_mlp(learner.obs_dim, learner.config.hidden_sizes, learner.n_actions, generator)
         x = torch.from_numpy(np.asarray(ref.observations, dtype=np.float32))
         y = torch.from_numpy(ref.q_star.astype(np.float32))
         optimizer = torch.optim.Adam(net.parameters(), lr=NETWORK_FIT_LEARNING_RATE)

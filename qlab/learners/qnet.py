@@ -122,7 +122,7 @@ def bootstrap_values(q_online_next: torch.Tensor, q_target_next: torch.Tensor, d
     return q_target_next.gather(1, choice).squeeze(1)
 
 
-def _mlp(obs_dim: int, hidden_sizes: list[int], n_actions: int, generator: torch.Generator) -> nn.Sequential:
+def build_mlp(obs_dim: int, hidden_sizes: list[int], n_actions: int, generator: torch.Generator) -> nn.Sequential:
     """ReLU MLP; weights and biases ~ U(-1/sqrt(fan_in), 1/sqrt(fan_in)) drawn from ``generator``."""
     widths = [obs_dim, *(int(h) for h in hidden_sizes), n_actions]
     layers: list[nn.Module] = []
@@ -157,7 +157,7 @@ class QNetLearner:
         self.epsilon = check_epsilon("epsilon", config.epsilon)
         self.rng = np.random.default_rng(seed)
         self.torch_generator = torch.Generator().manual_seed(int(seed))
-        self.online = _mlp(self.obs_dim, config.hidden_sizes, self.n_actions, self.torch_generator)
+        self.online = build_mlp(self.obs_dim, config.hidden_sizes, self.n_actions, self.torch_generator)
         self.target = copy.deepcopy(self.online).requires_grad_(False)
         self.optimizer = torch.optim.Adam(self.online.parameters(), lr=config.learning_rate)
         self._weights = [m.weight for m in self.online if isinstance(m, nn.Linear)]
