@@ -117,26 +117,31 @@ def start_at_potential(learner: Learner, kind: str, env: gym.Env) -> None:
 
 
 class Progress:
-    """A one-line progress bar for a single run, or a single closing line per run in a sweep."""
+    """Progress of one run: a redrawn bar on a terminal, a line per tenth of the budget when piped;
+    in a sweep (``bar=False``) only the closing line, one per run."""
 
     def __init__(self, label: str, total: int, bar: bool, stream=sys.stderr):
         self.label, self.total, self.bar, self.stream = label, total, bar, stream
+        self.live = bar and stream.isatty()
         self.start = time.perf_counter()
         self.shown = -1
 
     def update(self, step: int, note: str) -> None:
+        """Show ``step`` of the budget with a short note (e.g. the latest evaluation)."""
         if not self.bar:
             return
         pct = int(100 * step / self.total)
-        if pct != self.shown:
-            self.shown = pct
-            filled = "#" * (pct // 4)
-            self.stream.write(f"\r{self.label} [{filled:<25}] {pct:3d}% {note}")
-            self.stream.flush()
+        if pct == self.shown or (not self.live and pct // 10 == self.shown // 10):
+            return
+        self.shown = pct
+        text = f"[{'#' * (pct // 4):<25}] {pct:3d}%  step {step:,}/{self.total:,}  {note}"
+        self.stream.write(f"\r{text:<100}" if self.live else text + "\n")
+        self.stream.flush()
 
     def close(self, message: str) -> None:
+        """The run's one closing line: its name, the outcome, the wall time."""
         minutes = (time.perf_counter() - self.start) / 60
-        prefix = "\n" if self.bar else ""
+        prefix = "\n" if self.live and self.shown >= 0 else ""
         self.stream.write(f"{prefix}{self.label}: {message} ({minutes:.1f} min)\n")
         self.stream.flush()
 
@@ -221,8 +226,11 @@ def run_experiment(
         if on_checkpoint is not None:
             on_checkpoint(checkpoints)
 
+    latest = {"success_rate": float("nan")}
+
     def run_eval() -> dict[str, float]:
         result = evaluate(learner, eval_env, start_seeds, gamma)
+        latest.update(result)
         recorder.scalars(result, loop.step, "eval/")
         loop.last_eval = loop.step
         loop.next_eval = loop.step + cfg.evaluation.every_steps
@@ -268,7 +276,7 @@ def run_experiment(
                                  loop.step, "learn/")
                 recorder.scalar("speed/steps_per_second", t / max(time.perf_counter() - tick, 1e-9), loop.step)
                 loop.episode += 1
-                progress.update(loop.step, f"episode {loop.episode}")
+                progress.update(loop.step, f"episode {loop.episode}, evaluated success {latest['success_rate']:.2f}")
                 if loop.episode % cfg.checkpoint_every_episodes == 0:
                     checkpoint()
         final = run_eval() if loop.last_eval != loop.step else _last_eval(recorder, loop.step)
