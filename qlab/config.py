@@ -162,6 +162,17 @@ def validate(cfg: DictConfig) -> None:
         raise ValueError(f"shaping.variant must be one of {list(SHAPING_VARIANTS)}, got {cfg.shaping.variant!r}")
 
 
+def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+    """A nested config as one level of dotted keys, e.g. ``learner.epsilon.start``."""
+    out: dict[str, Any] = {}
+    for key, value in tree.items():
+        if isinstance(value, dict):
+            out.update(flatten(value, f"{prefix}{key}."))
+        else:
+            out[f"{prefix}{key}"] = value
+    return out
+
+
 def to_container(cfg: DictConfig) -> dict[str, Any]:
     """Resolved plain-dict copy of a config."""
     return OmegaConf.to_container(cfg, resolve=True)  # type: ignore[return-value]

@@ -24,7 +24,7 @@ import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
 from qlab.checkpoint import has_checkpoint, load_checkpoint, save_checkpoint
-from qlab.config import to_container, validate
+from qlab.config import flatten, to_container, validate
 from qlab.learners import LEARNERS, Learner, Transitions, build_learner, load_target
 from qlab.recording import MARKER, SUMMARY, Recorder, atomic_write_json, atomic_write_text
 from qlab.shaping import ShapedReward
@@ -287,7 +287,7 @@ def run_experiment(
         raise
     summary = {"status": status, "steps": loop.step, "episodes": loop.episode, "diverged_at_step": diverged_at,
                "config_hash": digest, "final": final}
-    recorder.hparams(_flat(to_container(cfg)), final)
+    recorder.hparams(flatten(to_container(cfg)), final)
     recorder.close()
     atomic_write_json(run_dir / SUMMARY, summary)
     atomic_write_text(run_dir / MARKER, digest + "\n")
@@ -300,14 +300,3 @@ def run_experiment(
 def _last_eval(recorder: Recorder, step: int) -> dict[str, float]:
     """The evaluation already recorded at ``step`` (when the budget ended on an evaluation)."""
     return {tag.removeprefix("eval/"): v for s, tag, v in recorder.rows if s == step and tag.startswith("eval/")}
-
-
-def _flat(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
-    """Flatten a nested config into dotted keys (for the hparams view)."""
-    out: dict[str, Any] = {}
-    for key, value in tree.items():
-        if isinstance(value, dict):
-            out.update(_flat(value, f"{prefix}{key}."))
-        else:
-            out[f"{prefix}{key}"] = value
-    return out

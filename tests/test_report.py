@@ -11,6 +11,7 @@ import csv
 import json
 import re
 import shutil
+from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
@@ -20,6 +21,7 @@ from matplotlib.colors import to_hex
 from scipy.stats import trim_mean
 
 from qlab.compare import figures, stats
+from qlab.compare.markup import markdown_to_html
 from qlab.compare.report import main
 from qlab.compare.runs import MAX_SETTING_NAME, START_AT_POTENTIAL_ARM, eval_matrix, load_study, setting_folder
 from qlab.compare.selection import select, swept_keys
@@ -318,3 +320,44 @@ def test_setting_folder_names_are_short_safe_and_distinct():
     assert len(set(names)) == len(names)
     assert all(len(n) <= MAX_SETTING_NAME and re.fullmatch(r"[A-Za-z0-9=,._+\-]+", n) for n in names)
     assert names[0] == setting_folder({"task.id": "qlab/Dock-v0", "task.start_distance_m": (10.0, 20.0)})
+
+
+class Elements(HTMLParser):
+    """The anchors (href, text), code spans and bold spans of a page, decoded by the standard library's parser."""
+
+    def __init__(self) -> None:
+        super().__init__(convert_charrefs=True)
+        self.found: dict[str, list] = {"a": [], "code": [], "strong": []}
+        self.open: list[tuple[str, str | None, list[str]]] = []
+
+    def handle_starttag(self, tag, attrs):
+        if tag in self.found:
+            self.open.append((tag, dict(attrs).get("href"), []))
+
+    def handle_data(self, data):
+        for _, _, text in self.open:
+            text.append(data)
+
+    def handle_endtag(self, tag):
+        if tag in self.found:
+            name, href, text = self.open.pop()
+            assert name == tag  # properly nested
+            self.found[tag].append((href, "".join(text)) if tag == "a" else "".join(text))
+
+
+def test_markdown_links_point_at_html_pages_and_are_escaped(tmp_path):
+    text = ('- [A & <b> "c"](sub/report.md): x < y & z\n'
+            "- back to [the study](../report.md#summary), [a query](page.md?a=1&b=2) and "
+            "[elsewhere](https://example.org/notes.md)\n"
+            "- `[not a link](x.md)` and **[bold](y.md)** and [no bold](a**b**.md)\n")
+    page = markdown_to_html(text, "links", tmp_path)
+    # html.parser (Python standard library) decodes character references as the HTML standard does
+    parsed = Elements()
+    parsed.feed(page)
+    parsed.close()
+    assert parsed.found["a"] == [("sub/report.html", 'A & <b> "c"'), ("../report.html#summary", "the study"),
+                                 ("page.html?a=1&b=2", "a query"), ("https://example.org/notes.md", "elsewhere"),
+                                 ("y.html", "bold"), ("a**b**.html", "no bold")]
+    assert parsed.found["code"] == ["[not a link](x.md)"]
+    assert parsed.found["strong"] == ["bold"]
+    assert "<b>" not in page and "x &lt; y &amp; z" in page

@@ -15,8 +15,8 @@ from matplotlib.figure import Figure
 from PIL import Image
 
 from qlab.compare.diagnostics import ValueMaps
-from qlab.compare.measures import Band, Estimate
-from qlab.compare.runs import START_AT_POTENTIAL_ARM
+from qlab.compare.measures import ArmMeasures, Band, Estimate
+from qlab.compare.runs import START_AT_POTENTIAL_ARM, TaskSetting, arm_sort_key, position
 
 #: colour of each known arm (Okabe & Ito colour-blind-safe palette), used by every figure
 ARM_COLOURS = {
@@ -109,6 +109,45 @@ def interval_figure(
     return fig
 
 
+def median_is_bound(m: ArmMeasures) -> bool:
+    """Whether ``m``'s median steps to threshold is only a lower bound: half or more of its runs never reached it.
+
+    The one rule behind the hollow markers here and the ``>=`` in the report's text.
+    """
+    return 2 * m.n_censored >= m.n_runs
+
+
+def settings_figure(
+    settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], key: str, threshold: float,
+) -> Figure:
+    """Median steps to threshold against the task key's value (list midpoints), one panel per learner.
+
+    ``measures[i]`` are the measures of ``settings[i]``. Filled markers: reached by more than half
+    the runs; hollow: a lower bound (half or more censored at the budget).
+    """
+    learners = sorted({lr for ms in measures for lr in ms})
+    fig, axes = _figure(len(learners), height=PANEL[1] + 0.3)
+    xs = [position(s.values[key]) for s in settings]
+    ranged = any(isinstance(s.values[key], tuple) for s in settings)
+    for ax, learner in zip(axes, learners, strict=True):
+        arms = sorted({a for ms in measures for a in ms.get(learner, {})}, key=arm_sort_key)
+        for arm in arms:
+            points = [(x, ms[learner][arm]) for x, ms in zip(xs, measures, strict=True) if arm in ms.get(learner, {})]
+            colour = arm_colour(arm)
+            x = [p for p, _ in points]
+            y = [m.median_threshold_steps() for _, m in points]
+            ax.plot(x, y, color=colour, linewidth=1.6, label=arm)
+            ax.scatter(x, y, s=30, zorder=3, edgecolors=colour, linewidths=1.4,
+                       facecolors=["white" if median_is_bound(m) else colour for _, m in points])
+        ax.set_ylim(bottom=0)
+        ax.set_xticks(xs, [f"{x:g}" for x in xs])
+        ax.set_xlabel(f"{key} (midpoint of the range)" if ranged else key)
+        ax.set_ylabel(f"median environment steps to success >= {threshold:g}")
+        _title(ax, f"{learner} (hollow: lower bound)")
+        ax.legend(fontsize=7.5, frameon=False)
+    return fig
+
+
 def value_map_figure(learner: str, maps: list[tuple[str, str, ValueMaps]]) -> Figure:
     """Rows of (arm, run name, maps); columns learned V, V* of the training reward, greedy actions not optimal."""
     fig = Figure(figsize=(11.5, 2.7 * len(maps) + 0.3), layout="constrained")
@@ -146,3 +185,9 @@ def save_png(fig: Figure, path: Path) -> Path:
     image = Image.fromarray(np.asarray(canvas.buffer_rgba())).convert("RGB")
     image.quantize(colors=256).save(path, format="PNG", optimize=True, dpi=(DPI, DPI))
     return path
+
+
+def save_figure(fig: Figure, folder: Path, name: str) -> str:
+    """Save ``fig`` as ``folder/name`` (see :func:`save_png`); returns the Markdown line that shows it."""
+    save_png(fig, folder / name)
+    return f"![{name.removesuffix('.png')}]({name})"

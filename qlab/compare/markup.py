@@ -3,8 +3,9 @@
 Blocks: ``#``/``##``/``###`` headings, pipe tables (header, separator, rows), ``- `` lists
 (indented items nest one level),
 ``> `` notes, a line holding only ``![alt](file.png)`` (embedded as a base64 PNG read from
-``figure_dir``) and paragraphs. Inline: ``**bold**`` and ```code```. Everything else is text,
-escaped.
+``figure_dir``) and paragraphs. Inline: ``**bold**``, ```code``` and links ``[text](url)``; a
+link to a local ``.md`` page points at its ``.html`` page instead (the report writes both).
+Everything else is text, escaped.
 """
 
 from __future__ import annotations
@@ -13,10 +14,13 @@ import base64
 import html
 import re
 from pathlib import Path
+from urllib.parse import urlsplit
 
 _IMAGE = re.compile(r"^!\[(?P<alt>[^\]]*)\]\((?P<src>[^)\s]+)\)$")
 _BOLD = re.compile(r"\*\*(.+?)\*\*")
-_CODE = re.compile(r"`([^`]+)`")
+# a code span, or a link outside one (not an image): ``[text](url)``
+_SPAN = re.compile(r"`(?P<code>[^`]+)`|(?<!!)\[(?P<text>[^\[\]]+)\]\((?P<url>[^()\[\]\s]+)\)")
+_ANCHOR = "<a>"  # an anchor before its href is filled in (escaped text never holds a bare "<")
 _STYLE = """
 body { font-family: system-ui, sans-serif; max-width: 1100px; margin: 2em auto; padding: 0 1em; color: #222;
        line-height: 1.45; }
@@ -33,10 +37,33 @@ code { background: #f3f3f3; padding: 0 .2em; }
 """
 
 
+def _href(url: str) -> str:
+    """The link target as an escaped attribute value; a local ``.md`` page becomes its ``.html`` page."""
+    parts = urlsplit(url)
+    if not parts.scheme and not parts.netloc and parts.path.lower().endswith(".md"):
+        url = parts._replace(path=parts.path[:-3] + ".html").geturl()
+    return html.escape(url, quote=True)
+
+
+def _spans(text: str, hrefs: list[str]) -> str:
+    """``text`` escaped, with code spans, and links as bare anchors whose targets are appended to ``hrefs``."""
+    out, end = [], 0
+    for m in _SPAN.finditer(text):
+        out.append(html.escape(text[end : m.start()], quote=False))
+        if m["code"] is not None:
+            out.append(f"<code>{html.escape(m['code'], quote=False)}</code>")
+        else:
+            hrefs.append(_href(m["url"]))
+            out.append(f"{_ANCHOR}{_spans(m['text'], hrefs)}</a>")  # link text holds no link: no brackets
+        end = m.end()
+    return "".join([*out, html.escape(text[end:], quote=False)])
+
+
 def _inline(text: str) -> str:
-    out = html.escape(text, quote=False)
-    out = _CODE.sub(r"<code>\1</code>", out)
-    return _BOLD.sub(r"<strong>\1</strong>", out)
+    hrefs: list[str] = []
+    out = _BOLD.sub(r"<strong>\1</strong>", _spans(text, hrefs))
+    pieces = out.split(_ANCHOR)  # hrefs go in after bold, so no ``**`` inside a URL is read as bold
+    return pieces[0] + "".join(f'<a href="{h}">{p}' for h, p in zip(hrefs, pieces[1:], strict=True))
 
 
 def _cells(line: str) -> list[str]:

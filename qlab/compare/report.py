@@ -7,60 +7,36 @@ Q-function diagnostics and the shaping audit where an exact answer exists
 (:mod:`qlab.compare.exact`) and writes the report beside the figures.
 
 Task settings are never compared as if they were hyperparameters: when the runs differ in a
-``task.*`` key, each task setting gets its own full report in a subfolder named after it, and the
-top-level report lists the settings with links and sets the arms side by side across them (IQM
-final success, median steps to threshold, and a figure of the steps against the setting when
-one numeric task key varies).
+``task.*`` key, each task setting gets its own full report in a subfolder named after it, below a
+top-level overview across the settings (:mod:`qlab.compare.overview`).
 """
 
 from __future__ import annotations
 
 import argparse
-import re
 import sys
 from pathlib import Path
-
-from matplotlib.backends.backend_agg import FigureCanvasAgg
-from matplotlib.figure import Figure
 
 from qlab.compare import exact, figures
 from qlab.compare.markup import markdown_to_html
 from qlab.compare.measures import ArmMeasures, Estimate, learner_measures
-from qlab.compare.runs import (
-    FAILURE_RULE,
-    REPORT_MD,
-    Study,
-    TaskSetting,
-    arm_sort_key,
-    load_study,
-    position,
-    split_by_task,
+from qlab.compare.overview import (
+    CAUTION,
+    failure_counts,
+    median_steps,
+    overview_lines,
+    seed_warning,
+    unreadable_lines,
 )
+from qlab.compare.runs import FAILURE_RULE, REPORT_MD, Study, load_study, split_by_task
 from qlab.compare.selection import Selection, parse_seeds, select
-from qlab.compare.stats import few_seeds_warning
 from qlab.recording import atomic_write_text
 
 REPORT_HTML = "report.html"
-#: the figure of steps to threshold against the task setting (top-level report of a study with several settings)
-SETTINGS_FIGURE = "steps_by_task_setting.png"
-# a Markdown link to a report page: markup.py has no links, so the HTML page gets them here
-_REPORT_LINK = re.compile(r"\[([^\]\[<>]+)\]\(([^()\s\"<>]*)report\.(?:md|html)\)")
-CAUTION = ("> Caution: these results come from simulation only. A controller learned here is not fit for real "
-           "plant as it is; validate it under local codes and licensed engineering practice.")
 
 
 def _interval(e: Estimate, digits: int = 2) -> str:
     return f"{e.value:.{digits}f} [{e.low:.{digits}f}, {e.high:.{digits}f}]"
-
-
-def _steps(value: float) -> str:
-    return f"{value:,.0f}"
-
-
-def _median_steps(m: ArmMeasures) -> str:
-    """Median steps to threshold; a lower bound (``>=``) when half the runs or more never reached it."""
-    text = _steps(m.median_threshold_steps())
-    return f">= {text}" if 2 * m.n_censored >= m.n_runs else text
 
 
 def _verdict(e: Estimate) -> str:
@@ -71,7 +47,7 @@ def _verdict(e: Estimate) -> str:
 
 def _speed_ratio(fast: ArmMeasures, base: ArmMeasures) -> str:
     """How many times fewer steps ``fast`` needs than ``base`` to reach the threshold (median runs)."""
-    fast_bound, base_bound = 2 * fast.n_censored >= fast.n_runs, 2 * base.n_censored >= base.n_runs
+    fast_bound, base_bound = figures.median_is_bound(fast), figures.median_is_bound(base)
     if fast_bound:
         return "reaches the threshold in at most half of its runs within the budget"
     ratio = base.median_threshold_steps() / max(fast.median_threshold_steps(), 1.0)
@@ -94,16 +70,15 @@ def _fastest(ms: dict[str, ArmMeasures]) -> tuple[ArmMeasures, list[str]]:
 def summary_lines(study: Study, measures: dict[str, dict[str, ArmMeasures]], threshold: float) -> list[str]:
     """The plain-language summary: per learner the fastest arm, by how much, and how sure."""
     lines = ["## Summary", ""]
-    n_div = sum(r.status == "diverged" for r in study.runs)
-    n_crash = sum(r.status == "crashed" for r in study.runs)
+    n_div, n_crash = failure_counts(study.runs)
     lines.append(f"- {len(study.runs)} runs read: {n_div} diverged, {n_crash} crashed or unfinished "
                  f"(failure scores: {FAILURE_RULE}).")
     for learner, ms in measures.items():
         fast, tied = _fastest(ms)
         ties = f" (tied on median steps with {', '.join(f'`{a}`' for a in tied)})" if tied else ""
-        head = (f"- **{learner}**: `{fast.arm}` learns fastest{ties}: median {_median_steps(fast)} environment steps "
+        head = (f"- **{learner}**: `{fast.arm}` learns fastest{ties}: median {median_steps(fast)} environment steps "
                 f"to a success rate >= {threshold:g} ({fast.n_censored} of {fast.n_runs} runs never reached it).")
-        if 2 * fast.n_censored >= fast.n_runs:
+        if figures.median_is_bound(fast):
             head = (f"- **{learner}**: no arm reaches a success rate >= {threshold:g} in more than half of its runs "
                     "within the budget.")
         lines.append(head)
@@ -130,9 +105,9 @@ def runs_lines(study: Study, selections: dict[str, Selection], requested_seeds: 
     for learner, sel in selections.items():
         for arm in sel.arms:
             runs = sel.runs[arm]
+            n_div, n_crash = failure_counts(runs)
             lines.append(f"| {learner} | {arm} | {len(runs)} | {', '.join(str(r.seed) for r in runs)} | "
-                         f"{sum(not r.failed for r in runs)} | {sum(r.status == 'diverged' for r in runs)} | "
-                         f"{sum(r.status == 'crashed' for r in runs)} | {sel.chosen[arm] or 'as run'} |")
+                         f"{sum(not r.failed for r in runs)} | {n_div} | {n_crash} | {sel.chosen[arm] or 'as run'} |")
     lines.append("")
     for learner, sel in selections.items():
         if sel.swept_keys:
@@ -143,20 +118,7 @@ def runs_lines(study: Study, selections: dict[str, Selection], requested_seeds: 
         else:
             note = " (`--selection-seeds` unused)" if requested_seeds else ""
             lines.append(f"- **{learner}**: no hyperparameter sweep; every seed is reported{note}.")
-    if study.unreadable:
-        lines.append(f"- Folders without a config.yaml, not read as runs: {', '.join(study.unreadable)}.")
-    return [*lines, ""]
-
-
-def _seed_warning(measures: dict[str, dict[str, ArmMeasures]]) -> list[str]:
-    """The few-seeds warning for the smallest arm, as a note block (empty when there are enough runs)."""
-    warning = few_seeds_warning(min(m.n_runs for ms in measures.values() for m in ms.values()))
-    return [f"> {warning}", ""] if warning else []
-
-
-def _write_figure(fig, out: Path, name: str) -> str:
-    figures.save_png(fig, out / name)
-    return f"![{name.removesuffix('.png')}]({name})"
+    return [*lines, *unreadable_lines(study), ""]
 
 
 def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: float, out: Path) -> list[str]:
@@ -167,12 +129,13 @@ def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: fl
 
     lines = ["## Learning curves", "",
              "Greedy evaluation on the task's own reward: mean over the reported runs, shaded 95% percentile "
-             "bootstrap interval over runs.", "", *_seed_warning(measures)]
-    lines.append(_write_figure(figures.band_figure(panels("success"), figures.STEPS_LABEL, figures.SUCCESS_LABEL,
-                                                   ylim=(-0.03, 1.03)), out, "curves_success.png"))
+             "bootstrap interval over runs.", "", *seed_warning(measures)]
+    lines.append(figures.save_figure(figures.band_figure(panels("success"), figures.STEPS_LABEL,
+                                                         figures.SUCCESS_LABEL, ylim=(-0.03, 1.03)),
+                                     out, "curves_success.png"))
     lines.append("")
-    lines.append(_write_figure(figures.band_figure(panels("discounted_return"), figures.STEPS_LABEL,
-                                                   figures.RETURN_LABEL), out, "curves_return.png"))
+    lines.append(figures.save_figure(figures.band_figure(panels("discounted_return"), figures.STEPS_LABEL,
+                                                         figures.RETURN_LABEL), out, "curves_return.png"))
     lines += ["", "## Final performance", "",
               "Interquartile mean (IQM) over runs of the last evaluation, with 95% percentile bootstrap intervals.", "",
               "| learner | arm | runs | IQM final success rate | IQM final discounted return |",
@@ -180,7 +143,7 @@ def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: fl
     rows = [(lr, a, m) for lr, ms in measures.items() for a, m in ms.items()]
     for lr, a, m in rows:
         lines.append(f"| {lr} | {a} | {m.n_runs} | {_interval(m.iqm_success)} | {_interval(m.iqm_return, 3)} |")
-    lines += ["", _write_figure(figures.interval_figure([
+    lines += ["", figures.save_figure(figures.interval_figure([
         ("IQM final success rate (fraction)", {(lr, a): m.iqm_success for lr, a, m in rows}),
         ("IQM final discounted return (unitless)", {(lr, a): m.iqm_return for lr, a, m in rows})]),
         out, "final_scores.png"), ""]
@@ -193,7 +156,7 @@ def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: fl
                   "|---|---|---|---|---|"]
         lines += [f"| {lr} | {a} | {_interval(m.improvement_success)} | {_interval(m.improvement_return)} | "
                   f"{_verdict(m.improvement_success)} |" for lr, a, m in improvements]
-        lines += ["", _write_figure(figures.interval_figure([
+        lines += ["", figures.save_figure(figures.interval_figure([
             ("P(improvement over none), final success", {(lr, a): m.improvement_success for lr, a, m in improvements}),
             ("P(improvement over none), final discounted return",
              {(lr, a): m.improvement_return for lr, a, m in improvements})], reference=0.5, xlim=(-0.02, 1.02)),
@@ -205,13 +168,13 @@ def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: fl
               "(censored) count at the budget, so a median with half or more runs censored is a lower bound.", "",
               "| learner | arm | runs | reached | censored at budget | budget | median steps |",
               "|---|---|---|---|---|---|---|"]
-    lines += [f"| {lr} | {a} | {m.n_runs} | {int(m.reached.sum())} | {m.n_censored} | {_steps(m.budget)} | "
-              f"{_median_steps(m)} |" for lr, a, m in rows]
+    lines += [f"| {lr} | {a} | {m.n_runs} | {int(m.reached.sum())} | {m.n_censored} | {m.budget:,.0f} | "
+              f"{median_steps(m)} |" for lr, a, m in rows]
     lines += ["", "## Performance profiles", "",
               "Fraction of runs whose final success rate exceeds tau, with a 95% bootstrap band.", "",
-              _write_figure(figures.band_figure(panels("profile"), "tau (final success rate threshold)",
-                                                "fraction of runs with final success > tau", ylim=(-0.03, 1.03)),
-                            out, "profiles.png"),
+              figures.save_figure(figures.band_figure(panels("profile"), "tau (final success rate threshold)",
+                                                      "fraction of runs with final success > tau", ylim=(-0.03, 1.03)),
+                                  out, "profiles.png"),
               "", "## Overestimation", "",
               "Predicted value of the start states (max over actions of the learned Q, averaged) minus the discounted "
               "return the same greedy evaluation episodes earned on the training reward: above 0 the learner "
@@ -219,25 +182,19 @@ def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: fl
               "bootstrap interval.", ""]
     over = panels("overestimation")
     if any(over.values()):
-        lines.append(_write_figure(figures.band_figure(over, figures.STEPS_LABEL,
-                                                       "predicted minus achieved discounted return", zero_line=True),
-                                   out, "overestimation.png"))
+        lines.append(figures.save_figure(figures.band_figure(over, figures.STEPS_LABEL,
+                                                             "predicted minus achieved discounted return",
+                                                             zero_line=True), out, "overestimation.png"))
     else:
         lines.append("No finished run recorded the start-state predictions.")
     return [*lines, ""]
-
-
-def _html_page(text: str, title: str, out: Path) -> str:
-    """The HTML page of ``text``, its links to other reports pointing at their HTML pages."""
-    page = markdown_to_html(text, title, out)
-    return _REPORT_LINK.sub(lambda m: f'<a href="{m.group(2)}{REPORT_HTML}">{m.group(1)}</a>', page)
 
 
 def _write_pages(lines: list[str], title: str, out: Path) -> Path:
     text = "\n".join(lines).rstrip() + "\n"
     md_path = out / REPORT_MD
     atomic_write_text(md_path, text)
-    atomic_write_text(out / REPORT_HTML, _html_page(text, f"qlab report: {title}", out))
+    atomic_write_text(out / REPORT_HTML, markdown_to_html(text, f"qlab report: {title}", out))
     return md_path
 
 
@@ -254,7 +211,7 @@ def write_report(
     measures = {lr: learner_measures(sel, threshold) for lr, sel in selections.items()}
     lines = [f"# Comparison report: {title}", "", CAUTION, "", *(context or [])]
     lines += summary_lines(study, measures, threshold)
-    lines += _seed_warning(measures)
+    lines += seed_warning(measures)
     lines += runs_lines(study, selections, selection_seeds)
     lines += performance_lines(measures, threshold, out)
     if diagnostics:
@@ -263,100 +220,6 @@ def write_report(
         lines += ["## Q-function diagnostics", "", "Skipped (`--no-diagnostics`).", ""]
     _write_pages(lines, title, out)
     return measures
-
-
-def _figure_key(settings: list[TaskSetting]) -> str | None:
-    """The one varying task key when its values lie on a number line at distinct points; else None."""
-    keys = {k for s in settings for k in s.values}
-    if len(keys) != 1:
-        return None
-    key = keys.pop()
-    xs = [position(s.values[key]) for s in settings]
-    return key if None not in xs and len(set(xs)) == len(xs) else None
-
-
-def settings_figure(
-    settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], key: str, threshold: float,
-) -> Figure:
-    """Median steps to threshold against the task key's value (list midpoints), one panel per learner.
-
-    Filled markers: reached by more than half the runs; hollow: a lower bound (censored at the budget).
-    """
-    learners = sorted({lr for ms in measures for lr in ms})
-    fig = Figure(figsize=(figures.PANEL[0] * len(learners), figures.PANEL[1] + 0.3), layout="constrained")
-    FigureCanvasAgg(fig)
-    xs = [position(s.values[key]) for s in settings]
-    for ax, learner in zip(fig.subplots(1, len(learners), squeeze=False)[0], learners, strict=True):
-        arms = sorted({a for ms in measures for a in ms.get(learner, {})}, key=arm_sort_key)
-        for arm in arms:
-            points = [(x, ms[learner][arm]) for x, ms in zip(xs, measures, strict=True) if arm in ms.get(learner, {})]
-            colour = figures.arm_colour(arm)
-            x = [p for p, _ in points]
-            y = [m.median_threshold_steps() for _, m in points]
-            bound = [2 * m.n_censored >= m.n_runs for _, m in points]
-            ax.plot(x, y, color=colour, linewidth=1.6, label=arm)
-            ax.scatter(x, y, s=30, zorder=3, edgecolors=colour, linewidths=1.4,
-                       facecolors=["white" if b else colour for b in bound])
-        ax.spines[["top", "right"]].set_visible(False)
-        ax.grid(True, axis="y", color="#e4e4e4", linewidth=0.8)
-        ax.set_axisbelow(True)
-        ax.set_ylim(bottom=0)
-        ax.set_xticks(xs, [f"{x:g}" for x in xs])
-        ax.tick_params(labelsize=8)
-        ranged = any(isinstance(s.values[key], tuple) for s in settings)
-        ax.set_xlabel(f"{key} (midpoint of the range)" if ranged else key, fontsize=8.5)
-        ax.set_ylabel(f"median environment steps to success >= {threshold:g}", fontsize=8.5)
-        ax.set_title(f"{learner} (hollow: lower bound)", loc="left", fontsize=9.5, fontweight="bold")
-        ax.legend(fontsize=7.5, frameon=False)
-    return fig
-
-
-def overview_lines(
-    study: Study, settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], threshold: float,
-    out: Path,
-) -> list[str]:
-    """The top-level report of a study with several task settings: the settings, linked, and one table across them."""
-    keys = sorted({k for s in settings for k in s.values})
-    shown = ", ".join(f"`{k}`" for k in keys)
-    lines = [f"# Comparison report: {study.name}", "", CAUTION, "",
-             f"{len(study.runs)} runs read in {len(settings)} task settings: the runs differ in {shown}. Different "
-             "task settings are different problems, so each has its own full report and nothing is chosen across "
-             "them (a hyperparameter sweep, if any, is resolved within each setting).", "", "## Task settings", ""]
-    for s in settings:
-        n_div = sum(r.status == "diverged" for r in s.study.runs)
-        n_crash = sum(r.status == "crashed" for r in s.study.runs)
-        lines.append(f"- [{s.folder}]({s.folder}/{REPORT_MD}): {s.label}; {len(s.study.runs)} runs "
-                     f"({', '.join(s.study.learners())}; arms {', '.join(s.study.arms())}), {n_div} diverged, "
-                     f"{n_crash} crashed or unfinished.")
-    lines += ["", "## Across task settings", "",
-              f"Per learner and arm, in each task setting (columns by {shown}): the interquartile mean (IQM) of the "
-              f"final success rate over the reported runs, and the median environment steps to a success rate >= "
-              f"{threshold:g}. Runs that never reach it count at the budget; `>=` marks a lower bound (half or more "
-              f"of the runs never reached it). Failure scores: {FAILURE_RULE}. Intervals and the rest are in each "
-              "setting's report.", ""]
-    lines += _seed_warning({f"{i}/{lr}": ms for i, m in enumerate(measures) for lr, ms in m.items()})
-    header = "| learner | arm | " + " | ".join(f"{s.short_label}: IQM final success | {s.short_label}: median steps"
-                                               for s in settings) + " |"
-    lines += [header, "|---|---|" + "---|---|" * len(settings)]
-    pairs = sorted({(lr, a) for m in measures for lr, ms in m.items() for a in ms},
-                   key=lambda p: (p[0], arm_sort_key(p[1])))
-    for lr, arm in pairs:
-        cells = []
-        for m in measures:
-            am = m.get(lr, {}).get(arm)
-            cells += [f"{am.iqm_success.value:.2f}", _median_steps(am)] if am else ["not run", "not run"]
-        lines.append(f"| {lr} | {arm} | " + " | ".join(cells) + " |")
-    lines.append("")
-    key = _figure_key(settings)
-    if key is not None:
-        lines.append(_write_figure(settings_figure(settings, measures, key, threshold), out, SETTINGS_FIGURE))
-    else:
-        lines.append("No figure across settings: it needs exactly one varying task key whose values are numbers or "
-                     "lists of numbers (drawn at their midpoints) at distinct points.")
-    lines.append("")
-    if study.unreadable:
-        lines += [f"- Folders without a config.yaml, not read as runs: {', '.join(study.unreadable)}.", ""]
-    return lines
 
 
 def build_report(

@@ -30,6 +30,7 @@ from typing import Any
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
+from qlab.config import flatten as flatten_config
 from qlab.recording import MARKER, SUMMARY, read_metrics
 
 #: the scores a failed run loses from its failure step on (see the module docstring)
@@ -52,15 +53,9 @@ START_AT_POTENTIAL_ARM = "none + Q started at Phi"
 ARM_ORDER = ("none", START_AT_POTENTIAL_ARM, "potential", "progress")
 
 
-def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
+def flatten(tree: dict[str, Any]) -> dict[str, Any]:
     """Nested config as dotted keys; lists become tuples so values can be compared and hashed."""
-    out: dict[str, Any] = {}
-    for key, value in tree.items():
-        if isinstance(value, dict):
-            out.update(flatten(value, f"{prefix}{key}."))
-        else:
-            out[f"{prefix}{key}"] = _frozen(value)
-    return out
+    return {key: _frozen(value) for key, value in flatten_config(tree).items()}
 
 
 def _frozen(value: Any) -> Any:

@@ -1,0 +1,106 @@
+"""The top-level report of a study with several task settings, and the text every report page shares.
+
+Different task settings are different problems: each gets its own full report
+(:mod:`qlab.compare.report`), and the overview lists the settings with links to those reports
+and sets the arms side by side across them (IQM final success, median steps to threshold, and a
+figure of the steps against the setting when one numeric task key varies).
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+from qlab.compare import figures
+from qlab.compare.measures import ArmMeasures
+from qlab.compare.runs import FAILURE_RULE, REPORT_MD, Run, Study, TaskSetting, arm_sort_key, position
+from qlab.compare.stats import few_seeds_warning
+
+#: the figure of steps to threshold against the task setting
+SETTINGS_FIGURE = "steps_by_task_setting.png"
+CAUTION = ("> Caution: these results come from simulation only. A controller learned here is not fit for real "
+           "plant as it is; validate it under local codes and licensed engineering practice.")
+
+
+def median_steps(m: ArmMeasures) -> str:
+    """Median steps to threshold; a lower bound (``>=``) when half the runs or more never reached it."""
+    text = f"{m.median_threshold_steps():,.0f}"
+    return f">= {text}" if figures.median_is_bound(m) else text
+
+
+def failure_counts(runs: list[Run]) -> tuple[int, int]:
+    """How many of ``runs`` diverged and how many crashed (or never finished)."""
+    return sum(r.status == "diverged" for r in runs), sum(r.status == "crashed" for r in runs)
+
+
+def seed_warning(measures: dict[str, dict[str, ArmMeasures]]) -> list[str]:
+    """The few-seeds warning for the smallest arm, as a note block (empty when there are enough runs)."""
+    warning = few_seeds_warning(min(m.n_runs for ms in measures.values() for m in ms.values()))
+    return [f"> {warning}", ""] if warning else []
+
+
+def unreadable_lines(study: Study) -> list[str]:
+    """A list item naming the study's folders that are not runs (empty when there are none)."""
+    if not study.unreadable:
+        return []
+    return [f"- Folders without a config.yaml, not read as runs: {', '.join(study.unreadable)}."]
+
+
+def figure_key(settings: list[TaskSetting]) -> str | None:
+    """The one varying task key when its values lie on a number line at distinct points; else None."""
+    keys = {k for s in settings for k in s.values}
+    if len(keys) != 1:
+        return None
+    key = keys.pop()
+    xs = [position(s.values[key]) for s in settings]
+    return key if None not in xs and len(set(xs)) == len(xs) else None
+
+
+def overview_lines(
+    study: Study, settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], threshold: float,
+    out: Path,
+) -> list[str]:
+    """The top-level report of a study with several task settings: the settings, linked, and one table across them.
+
+    ``measures[i]`` are the measures of ``settings[i]``; the figure across settings is saved in ``out``.
+    """
+    keys = sorted({k for s in settings for k in s.values})
+    shown = ", ".join(f"`{k}`" for k in keys)
+    lines = [f"# Comparison report: {study.name}", "", CAUTION, "",
+             f"{len(study.runs)} runs read in {len(settings)} task settings: the runs differ in {shown}. Different "
+             "task settings are different problems, so each has its own full report and nothing is chosen across "
+             "them (a hyperparameter sweep, if any, is resolved within each setting).", "", "## Task settings", ""]
+    for s in settings:
+        n_div, n_crash = failure_counts(s.study.runs)
+        lines.append(f"- [{s.folder}]({s.folder}/{REPORT_MD}): {s.label}; {len(s.study.runs)} runs "
+                     f"({', '.join(s.study.learners())}; arms {', '.join(s.study.arms())}), {n_div} diverged, "
+                     f"{n_crash} crashed or unfinished.")
+    lines += ["", "## Across task settings", "",
+              f"Per learner and arm, in each task setting (columns by {shown}): the interquartile mean (IQM) of the "
+              f"final success rate over the reported runs, and the median environment steps to a success rate >= "
+              f"{threshold:g}. Runs that never reach it count at the budget; `>=` marks a lower bound (half or more "
+              f"of the runs never reached it). Failure scores: {FAILURE_RULE}. Intervals and the rest are in each "
+              "setting's report.", ""]
+    lines += seed_warning({f"{i}/{lr}": ms for i, m in enumerate(measures) for lr, ms in m.items()})
+    header = "| learner | arm | " + " | ".join(f"{s.short_label}: IQM final success | {s.short_label}: median steps"
+                                               for s in settings) + " |"
+    lines += [header, "|---|---|" + "---|---|" * len(settings)]
+    pairs = sorted({(lr, a) for m in measures for lr, ms in m.items() for a in ms},
+                   key=lambda p: (p[0], arm_sort_key(p[1])))
+    for lr, arm in pairs:
+        cells = []
+        for m in measures:
+            am = m.get(lr, {}).get(arm)
+            cells += [f"{am.iqm_success.value:.2f}", median_steps(am)] if am else ["not run", "not run"]
+        lines.append(f"| {lr} | {arm} | " + " | ".join(cells) + " |")
+    lines.append("")
+    key = figure_key(settings)
+    if key is not None:
+        lines.append(figures.save_figure(figures.settings_figure(settings, measures, key, threshold), out,
+                                         SETTINGS_FIGURE))
+    else:
+        lines.append("No figure across settings: it needs exactly one varying task key whose values are numbers or "
+                     "lists of numbers (drawn at their midpoints) at distinct points.")
+    lines.append("")
+    if study.unreadable:
+        lines += [*unreadable_lines(study), ""]
+    return lines
