@@ -14,6 +14,7 @@ from __future__ import annotations
 
 import hashlib
 import re
+import sys
 from pathlib import Path
 
 import hydra
@@ -21,7 +22,7 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.types import RunMode
 from omegaconf import DictConfig
 
-from qlab.config import CONFIG_DIR, register_configs
+from qlab.config import CONFIG_DIR, register_configs, unknown_key_message
 
 MAX_NAME = 200
 #: overrides that choose where a run is stored or how it is executed, not what it computes
@@ -54,5 +55,8 @@ def _app(cfg: DictConfig) -> dict:
 
 
 def run() -> None:
-    """``qlab-run``: train (and sweep) from the shell."""
+    """``qlab-run``: train (and sweep) from the shell; an unknown key fails at once, listing the valid ones."""
+    problem = unknown_key_message(sys.argv[1:])
+    if problem is not None:
+        raise SystemExit(f"qlab-run: {problem}")
     _app()

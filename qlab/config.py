@@ -156,8 +156,14 @@ def validate(cfg: DictConfig) -> None:
     for key, value in positive.items():
         if value <= 0:
             raise ValueError(f"{key} must be a positive integer, got {value}")
+    for key, value in {"seed": cfg.seed, "evaluation.start_seed": cfg.evaluation.start_seed}.items():
+        if value < 0:
+            raise ValueError(f"{key} must be an integer >= 0, got {value}")
     if not 0.0 <= cfg.gamma <= 1.0:
         raise ValueError(f"gamma must lie in [0, 1], got {cfg.gamma}")
+    scale = cfg.shaping.progress_scale
+    if scale is not None and scale < 0:
+        raise ValueError(f"shaping.progress_scale must be >= 0 (null: the task's default), got {scale}")
     if cfg.shaping.variant not in SHAPING_VARIANTS:
         raise ValueError(f"shaping.variant must be one of {list(SHAPING_VARIANTS)}, got {cfg.shaping.variant!r}")
 
@@ -176,3 +182,45 @@ def flatten(tree: dict[str, Any], prefix: str = "") -> dict[str, Any]:
 def to_container(cfg: DictConfig) -> dict[str, Any]:
     """Resolved plain-dict copy of a config."""
     return OmegaConf.to_container(cfg, resolve=True)  # type: ignore[return-value]
+
+
+#: config groups a command line can choose options of (``learner=qnet``)
+GROUPS = ("task", "shaping", "learner", "study")
+
+
+def unknown_key_message(overrides: list[str]) -> str | None:
+    """A message naming the first override whose key the composed config lacks, with the valid keys there.
+
+    Each group option named on the command line (``learner=tabular,qnet`` names two) is composed
+    once, so a key is accepted if some chosen option has it. ``+``/``~`` overrides, ``hydra.*``
+    keys and group choices are left to hydra.
+    """
+    from hydra import compose, initialize_config_dir
+
+    register_configs()
+    choices = {g: [] for g in GROUPS}
+    keys = []
+    for item in overrides:
+        if item.startswith(("-", "+", "~")) or "=" not in item:
+            continue
+        key, value = item.split("=", 1)
+        if key in choices:
+            choices[key] = [v for v in value.split(",") if v]
+        elif not key.startswith("hydra") and "/" not in key:
+            keys.append(key)
+    if not keys:
+        return None
+    first = [f"{g}={opts[0]}" for g, opts in choices.items() if opts]
+    variants = [first] + [[f"{g}={o}" if f.startswith(f"{g}=") else f for f in first]
+                          for g, opts in choices.items() for o in opts[1:]]
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        configs = [compose(config_name="config", overrides=v) for v in variants]
+    for key in keys:
+        parent, _, leaf = key.rpartition(".")
+        nodes = [cfg if not parent else OmegaConf.select(cfg, parent) for cfg in configs]
+        nodes = [n for n in nodes if isinstance(n, DictConfig)]
+        if nodes and not any(leaf in n for n in nodes):
+            valid = sorted({k for n in nodes for k in n})
+            where = f"'{parent}'" if parent else "the run config"
+            return f"unknown key '{key}': {where} has {valid}"
+    return None

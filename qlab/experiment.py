@@ -165,7 +165,7 @@ def build_run(cfg: DictConfig) -> tuple[gym.Env, gym.Env, Learner]:
     torch.set_num_threads(cfg.torch_threads)
     try:
         make_env(cfg.task, "none", cfg.gamma, None)
-    except ValueError as err:
+    except (ValueError, TypeError) as err:  # TypeError: a parameter the task does not take (e.g. +task.x=1)
         raise ValueError(f"task ({cfg.task.id}): {err}") from err
     try:
         env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)

@@ -34,8 +34,8 @@ from qlab.tasks.batch import TaskBatch
 
 CONFIG = QNetConfig(
     hidden_sizes=[64, 64], gamma=0.99, learning_rate=1e-3, batch_size=64, replay_capacity=50_000,
-    warmup_steps=500, update_every=1, target_update_every=250, loss="huber", double_q=False, n_step=1,
-    epsilon=ScheduleConfig("linear", 1.0, 0.1, 2_000.0), max_grad_norm=10.0,
+    warmup_steps=500, update_every=1, target_update_every=250, loss="huber", double_estimator=False, n_step=1,
+    epsilon=ScheduleConfig("linear", 1.0, 0.1, 2_000.0), grad_clip_norm=10.0,
 )
 
 
@@ -89,7 +89,7 @@ def _bare_loop(n_steps: int, seed: int) -> tuple[float, int]:
             loss = nn.functional.huber_loss(q, y)
             opt.zero_grad()
             loss.backward()
-            nn.utils.clip_grad_norm_(net.parameters(), cfg.max_grad_norm)
+            nn.utils.clip_grad_norm_(net.parameters(), cfg.grad_clip_norm)
             opt.step()
             updates += 1
             if updates % cfg.target_update_every == 0:

@@ -39,7 +39,7 @@ def test_max_estimator_bias_and_unbiased_double_estimator(n_actions):
     if n_actions == 2:
         expected = 1.0 / np.sqrt(np.pi)  # expected maximum of 2 standard normals (order statistics; from memory)
     elif n_actions == 3:
-        expected = 3.0 / (2.0 * np.sqrt(np.pi))  # expected maximum of 3 standard normals (order statistics)
+        expected = 3.0 / (2.0 * np.sqrt(np.pi))  # expected max of 3 standard normals (order statistics; from memory)
     else:
         expected = _expected_max_of_normals(n_actions)  # scipy.integrate.quad with scipy.stats.norm
     se_single = single.std(ddof=1) / np.sqrt(samples)
@@ -78,7 +78,7 @@ def test_q_converges_to_value_iteration_on_a_finite_mdp():
     gamma, n_states, goal = 0.9, P.shape[1], P.shape[1] - 1
     q_star = value_iteration(P, R, gamma)  # exact Q* (qlab.reference, checked there against Sutton & Barto)
     cfg = QNetConfig(hidden_sizes=[32], gamma=gamma, learning_rate=3e-3, batch_size=64, replay_capacity=20_000,
-                     warmup_steps=256, update_every=16, target_update_every=50, loss="squared", double_q=True,
+                     warmup_steps=256, update_every=16, target_update_every=50, loss="squared", double_estimator=True,
                      epsilon=ScheduleConfig("constant", 0.0))
     learner = QNetLearner(spaces.Box(0.0, 1.0, (n_states,)), spaces.Discrete(2), cfg, seed=0)
     rng = np.random.default_rng(0)
@@ -106,7 +106,7 @@ def test_greedy_action_follows_the_lq_gain():
     task = env.unwrapped
     K, _ = lq_solution(A, B, Q, R, gamma)  # discounted Riccati solution (qlab.reference.lq, checked there)
     cfg = QNetConfig(hidden_sizes=[64, 64], gamma=gamma, learning_rate=1e-3, batch_size=128, replay_capacity=50_000,
-                     warmup_steps=512, update_every=16, target_update_every=100, loss="squared", double_q=True,
+                     warmup_steps=512, update_every=16, target_update_every=100, loss="squared", double_estimator=True,
                      epsilon=ScheduleConfig("constant", 0.0))
     learner = QNetLearner(env.observation_space, env.action_space, cfg, seed=0)
     rng = np.random.default_rng(0)
@@ -127,7 +127,7 @@ def test_greedy_action_follows_the_lq_gain():
 # --- exact resume --------------------------------------------------------------------------
 
 RESUME_CFG = QNetConfig(hidden_sizes=[16, 16], gamma=0.95, learning_rate=1e-3, batch_size=16, replay_capacity=500,
-                        warmup_steps=40, update_every=2, target_update_every=10, n_step=3, double_q=True,
+                        warmup_steps=40, update_every=2, target_update_every=10, n_step=3, double_estimator=True,
                         epsilon=ScheduleConfig("linear", 1.0, 0.1, 150.0))
 
 
@@ -287,7 +287,7 @@ def test_nonfinite_loss_is_flagged_and_the_update_skipped():
         ({"epsilon": ScheduleConfig("cosine")}, "epsilon: schedule kind"),
         ({"epsilon": ScheduleConfig("linear", 2.0)}, "epsilon.start"),
         ({"epsilon": ScheduleConfig("linear", 1.0, horizon=0.0)}, "epsilon: schedule horizon"),
-        ({"max_grad_norm": -1.0}, "max_grad_norm"),
+        ({"grad_clip_norm": -1.0}, "grad_clip_norm"),
         ({"torch_threads": 0}, "torch_threads"),
     ],
 )

@@ -32,8 +32,8 @@ def _fill(buffer: ReplayBuffer, rewards, terminated=None, truncated=None) -> Non
 
 
 def test_hand_worked_two_step_sums_and_episode_ends():
-    # Hand-worked: rewards 1, 2, 3 with gamma 0.5 and n = 2 (common practice, no source: the n-step
-    # return sum_{k<n} gamma^k r[t+k] + gamma^n V(s[t+n]) of Sutton & Barto (2018), eq. 7.1).
+    # Hand-worked: rewards 1, 2, 3 with gamma 0.5 and n = 2, using the n-step return
+    # sum_{k<n} gamma^k r[t+k] + gamma^n V(s[t+n]) of Sutton & Barto (2018), eq. 7.1 (from memory).
     for end in ("terminated", "truncated"):
         buf = ReplayBuffer(capacity=10, obs_dim=1, gamma=0.5, n_step=2)
         flags = {end: [False, False, True]}

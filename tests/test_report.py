@@ -18,7 +18,7 @@ import numpy as np
 import pytest
 from hydra import compose, initialize_config_dir
 from matplotlib.colors import to_hex
-from scipy.stats import trim_mean
+from scipy.stats import mannwhitneyu, trim_mean
 
 from qlab.compare import figures, stats
 from qlab.compare.markup import markdown_to_html
@@ -162,6 +162,58 @@ def test_final_table_is_the_iqm_of_the_summaries(report, study):
         assert by_arm[arm][3].split(" [")[0] == f"{stats.iqm(success):.2f}"
         assert by_arm[arm][4].split(" [")[0] == f"{stats.iqm(ret):.3f}"
         assert by_arm[arm][2] == str(len(success))
+
+
+AGAINST_START = "Potential shaping against Q started at Phi"
+
+
+def first_reach(run: Path, threshold: float = 0.5) -> int | None:
+    """First evaluation step with success rate >= threshold, read from metrics.csv; None if never reached."""
+    return min((s for s, v in read_eval(run, "success_rate").items() if v >= threshold), default=None)
+
+
+def test_potential_is_set_against_q_started_at_phi(report, study):
+    out, _ = report
+    markdown = (out / "report.md").read_text()
+    rows = table(section(markdown, AGAINST_START))
+    assert [row[0] for row in rows] == ["tabular"]
+    row = rows[0]
+    for column, key in ((1, "success_rate"), (2, "discounted_return")):
+        shaped = np.array(list(finals(study, "potential", key).values()))
+        start = np.array(list(finals(study, "potential_start", key).values()))
+        p = stats.probability_of_improvement(shaped, start)
+        # scipy.stats.mannwhitneyu: U of the first sample counts pairs it wins, ties half (Mann & Whitney 1947),
+        # so U / (n m) = P(X > Y) + P(X = Y) / 2
+        assert p == pytest.approx(mannwhitneyu(shaped, start).statistic / (shaped.size * start.size))
+        low, high = stats.probability_of_improvement_ci(shaped, start, 0.95, seed=0)
+        assert row[column] == f"{p:.2f} [{low:.2f}, {high:.2f}]"
+        if key == "success_rate":
+            # scipy.stats.trim_mean(x, 0.25) is the interquartile mean (Agarwal et al. 2021)
+            a, b = trim_mean(shaped, 0.25), trim_mean(start, 0.25)
+            assert row[5] == f"{a:.2f} - {b:.2f} = {a - b:+.2f}"
+            assert f"P(`potential` beats `{START_AT_POTENTIAL_ARM}`) on final success {row[1]}" in section(
+                markdown, "Summary")
+    medians = []
+    for arm in ("potential", "potential_start"):
+        first = [first_reach(r) for r in sorted(study.glob(f"shaping={arm},seed=*"))]
+        median = f"{np.median([1500 if f is None else f for f in first]):,.0f}"  # censored at the 1,500-step budget
+        medians.append(f">= {median}" if 2 * sum(f is None for f in first) >= len(first) else median)
+    assert row[3] == " / ".join(medians)
+    if medians[0] == medians[1] and not medians[0].startswith(">="):
+        assert row[4] == f"the same median steps as `{START_AT_POTENTIAL_ARM}`"
+    both_cover = all(float(c.split(" [")[1].split(",")[0]) <= 0.5 <= float(c.split(", ")[1].rstrip("]"))
+                     for c in row[1:3])
+    assert ("consistent with Wiewiora (2003)" in row[6]) == both_cover
+
+
+@pytest.mark.parametrize("dropped", ["potential", "potential_start"])
+def test_against_start_section_needs_both_arms(study, tmp_path, dropped):
+    kept = Path(shutil.copytree(study, tmp_path / "kept", ignore=shutil.ignore_patterns(f"shaping={dropped},seed=*")))
+    assert main([str(kept), "--no-diagnostics"]) == 0
+    markdown = (kept / "report.md").read_text()
+    assert {row[1] for row in table(section(markdown, "Final performance"))} == set(ARMS.values()) - {ARMS[dropped]}
+    assert f"## {AGAINST_START}" not in markdown
+    assert f"against `{START_AT_POTENTIAL_ARM}`" not in markdown
 
 
 def test_diverged_and_crashed_runs_count_as_failures(study, tmp_path):

@@ -20,7 +20,7 @@ from hydra.errors import ConfigCompositionException
 from omegaconf import OmegaConf
 from omegaconf.errors import ConfigAttributeError, ValidationError
 
-from qlab.config import CONFIG_DIR, register_configs, validate
+from qlab.config import CONFIG_DIR, register_configs, unknown_key_message, validate
 from qlab.experiment import build_run, config_hash
 from qlab.recording import read_metrics
 
@@ -98,6 +98,28 @@ def test_unknown_key_names_the_key():
     assert "step_sise" in message
 
 
+def test_unknown_key_lists_the_valid_keys_of_its_node():
+    message = unknown_key_message(["learner=qnet", "learner.hidden_size=[8]"])
+    assert message is not None and "unknown key 'learner.hidden_size'" in message
+    assert "'hidden_sizes'" in message and "'learning_rate'" in message
+    message = unknown_key_message(["task=crane", "task.mass_kgs=5"])
+    assert "'task' has [" in message and "'mass_trolley_kg'" in message and "'mass_load_kg'" in message
+    assert unknown_key_message(["learner=tabular,qnet", "learner.hidden_sizes=[8]"]) is None  # qnet has it
+    assert unknown_key_message(["-m", "seed=0,1", "learner.epsilon.start=0.5"]) is None
+
+
+def test_unknown_key_from_the_shell_fails_before_any_work(tmp_path):
+    done = shell(["task.mass_kgs=5", f"results_dir={tmp_path}"], tmp_path, check=False)
+    assert done.returncode != 0
+    assert "unknown key 'task.mass_kgs': 'task' has [" in done.stderr and "'mass_kg'" in done.stderr
+    assert not (tmp_path / "scratch").exists()
+
+
+def test_negative_seed_is_refused():
+    with pytest.raises(ValueError, match="seed must be an integer >= 0, got -1"):
+        validate(compose_run(["seed=-1"]))
+
+
 def test_unknown_key_in_a_structured_node_is_refused():
     cfg = compose_run([])
     with pytest.raises((ConfigAttributeError, ValidationError)):
@@ -173,17 +195,32 @@ KILLER = textwrap.dedent(
     from hydra import compose, initialize_config_dir
     from qlab.config import CONFIG_DIR, register_configs
     from qlab.experiment import run_experiment
+    from qlab.recording import Recorder
 
     run_dir, n_kill, sig, *overrides = sys.argv[1:]
     register_configs()
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose(config_name="config", overrides=overrides)
 
-    def kill(n):
-        if n == int(n_kill):
-            os.kill(os.getpid(), getattr(signal, sig))
+    # After the n_kill-th checkpoint, let 12 more scalars reach the tensorboard file (flushed),
+    # then kill: the resumed run must purge them and record them once.
+    armed, after = [False], [0]
+    scalar = Recorder.scalar
 
-    run_experiment(cfg, run_dir, bar=False, on_checkpoint=kill)
+    def scalar_then_maybe_kill(self, tag, value, step):
+        scalar(self, tag, value, step)
+        if armed[0]:
+            after[0] += 1
+            if after[0] == 12:
+                self.writer.flush()
+                os.kill(os.getpid(), getattr(signal, sig))
+
+    Recorder.scalar = scalar_then_maybe_kill
+
+    def arm(n):
+        armed[0] = armed[0] or n == int(n_kill)
+
+    run_experiment(cfg, run_dir, bar=False, on_checkpoint=arm)
     """
 )
 
@@ -198,8 +235,10 @@ def test_killed_run_resumes_to_the_uninterrupted_result(tmp_path, learner, sig):
     overrides = [f"learner={learner}", "learner.warmup_steps=100" if learner == "qnet" else "seed=0", *TINY]
     whole, killed = tmp_path / "whole", tmp_path / "killed"
     assert run_script(whole, 0, sig, overrides) == 0
-    assert run_script(killed, 3, sig, overrides) != 0  # stopped just after its 3rd checkpoint
+    assert run_script(killed, 3, sig, overrides) != 0  # stopped a little after its 3rd checkpoint
     assert not (killed / "FINISHED").exists()
+    on_disk = tensorboard_scalars(killed)
+    assert max(s for s, _, _ in on_disk) > max(s for s, _, _ in read_metrics(killed))  # events past the checkpoint
     assert run_script(killed, 0, sig, overrides) == 0  # the same command again resumes and finishes
     rows = read_metrics(killed)
     assert len(rows) == len(set((s, t) for s, t, _ in rows))  # nothing recorded twice
@@ -223,7 +262,7 @@ def test_submitit_local_launcher_runs_a_two_job_sweep(tmp_path):
 
 def test_divergence_is_recorded_and_the_sweep_goes_on(tmp_path):
     shell(
-        ["-m", "learner=qnet", "learner.loss=squared", "learner.max_grad_norm=0", "learner.warmup_steps=50",
+        ["-m", "learner=qnet", "learner.loss=squared", "learner.grad_clip_norm=0", "learner.warmup_steps=50",
          "learner.learning_rate=1e12,1e-3", "study_name=blowup", f"results_dir={tmp_path}", *TINY],
         tmp_path,
     )

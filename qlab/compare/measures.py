@@ -11,10 +11,12 @@ from dataclasses import dataclass
 import numpy as np
 
 from qlab.compare import stats
-from qlab.compare.runs import Run, eval_matrix, eval_steps
+from qlab.compare.runs import START_AT_POTENTIAL_ARM, Run, eval_matrix, eval_steps
 from qlab.compare.selection import Selection
 
 CONFIDENCE = 0.95
+#: the shaped arm set against its control arm (Q started at Phi, trained on the task's own reward)
+POTENTIAL_ARM = "potential"
 #: tau grid of the performance profiles (final success rate is a fraction)
 PROFILE_TAUS = np.linspace(0.0, 1.0, 101)
 
@@ -76,6 +78,21 @@ class ArmMeasures:
     def median_threshold_steps(self) -> float:
         """Median steps to threshold, censored runs at the budget (a lower bound when half or more are censored)."""
         return float(np.median(self.threshold_steps))
+
+
+@dataclass
+class ArmContrast:
+    """One arm set against another arm: P(``arm`` beats ``other``) on final scores, with intervals."""
+
+    arm: ArmMeasures
+    other: ArmMeasures
+    improvement_success: Estimate  # P(a run of arm scores higher than a run of other), ties half
+    improvement_return: Estimate
+
+    @property
+    def iqm_success_difference(self) -> float:
+        """IQM final success of ``arm`` minus that of ``other``."""
+        return self.arm.iqm_success.value - self.other.iqm_success.value
 
 
 def _band(x: np.ndarray, matrix: np.ndarray, seed: int) -> Band:
@@ -144,3 +161,15 @@ def learner_measures(selection: Selection, threshold: float, seed: int = 0) -> d
                 m.improvement_success = _improvement(m.final_success, base.final_success, seed)
                 m.improvement_return = _improvement(m.final_return, base.final_return, seed)
     return out
+
+
+def contrast(arm: ArmMeasures, other: ArmMeasures, seed: int = 0) -> ArmContrast:
+    """``arm`` set against ``other`` on final success and final discounted return."""
+    return ArmContrast(arm, other, _improvement(arm.final_success, other.final_success, seed),
+                       _improvement(arm.final_return, other.final_return, seed))
+
+
+def potential_against_start(measures: dict[str, dict[str, ArmMeasures]], seed: int = 0) -> dict[str, ArmContrast]:
+    """Per learner that has both arms: ``potential`` set against ``none + Q started at Phi``."""
+    return {lr: contrast(ms[POTENTIAL_ARM], ms[START_AT_POTENTIAL_ARM], seed) for lr, ms in measures.items()
+            if POTENTIAL_ARM in ms and START_AT_POTENTIAL_ARM in ms}

@@ -19,7 +19,14 @@ from pathlib import Path
 
 from qlab.compare import exact, figures
 from qlab.compare.markup import markdown_to_html
-from qlab.compare.measures import ArmMeasures, Estimate, learner_measures
+from qlab.compare.measures import (
+    POTENTIAL_ARM,
+    ArmContrast,
+    ArmMeasures,
+    Estimate,
+    learner_measures,
+    potential_against_start,
+)
 from qlab.compare.overview import (
     CAUTION,
     failure_counts,
@@ -28,7 +35,7 @@ from qlab.compare.overview import (
     seed_warning,
     unreadable_lines,
 )
-from qlab.compare.runs import FAILURE_RULE, REPORT_MD, Study, load_study, split_by_task
+from qlab.compare.runs import FAILURE_RULE, REPORT_MD, START_AT_POTENTIAL_ARM, Study, load_study, split_by_task
 from qlab.compare.selection import Selection, parse_seeds, select
 from qlab.recording import atomic_write_text
 
@@ -52,12 +59,37 @@ def _speed_ratio(fast: ArmMeasures, base: ArmMeasures) -> str:
         return "reaches the threshold in at most half of its runs within the budget"
     ratio = base.median_threshold_steps() / max(fast.median_threshold_steps(), 1.0)
     if ratio == 1.0 and not base_bound:
-        return "the same median steps as `none`"
+        return f"the same median steps as `{base.arm}`"
     if ratio >= 1.0:
-        return f"{'at least ' if base_bound else ''}{ratio:.1f} times fewer steps than `none` (median runs)"
+        return f"{'at least ' if base_bound else ''}{ratio:.1f} times fewer steps than `{base.arm}` (median runs)"
     if base_bound:
-        return "speed against `none` undetermined (half or more `none` runs never reached the threshold)"
-    return f"{1.0 / ratio:.1f} times more steps than `none` (median runs)"
+        return (f"speed against `{base.arm}` undetermined (half or more `{base.arm}` runs never reached the "
+                "threshold)")
+    return f"{1.0 / ratio:.1f} times more steps than `{base.arm}` (median runs)"
+
+
+def _better(e: Estimate, c: ArmContrast) -> str | None:
+    """The arm of ``c`` that ``e`` (P(``c.arm`` beats ``c.other``)) shows better; None when its interval covers 0.5."""
+    if e.covers_half:
+        return None
+    return c.arm.arm if e.low > 0.5 else c.other.arm
+
+
+def _side(better: str | None, c: ArmContrast) -> str:
+    if better is None:
+        return "indistinguishable (interval covers 0.5)"
+    return f"`{better}` better (interval {'above' if better == c.arm.arm else 'below'} 0.5)"
+
+
+def _reading(c: ArmContrast) -> str:
+    """One line: whether shaping with Phi and starting Q at Phi could be told apart, and which arm is better."""
+    on_success, on_return = _better(c.improvement_success, c), _better(c.improvement_return, c)
+    if on_success is None and on_return is None:
+        return "indistinguishable (interval covers 0.5): consistent with Wiewiora (2003)"
+    if on_success == on_return:
+        side = "above" if on_success == c.arm.arm else "below"
+        return f"`{on_success}` better on final success and on final discounted return (intervals {side} 0.5)"
+    return f"on final success {_side(on_success, c)}; on final discounted return {_side(on_return, c)}"
 
 
 def _fastest(ms: dict[str, ArmMeasures]) -> tuple[ArmMeasures, list[str]]:
@@ -67,8 +99,13 @@ def _fastest(ms: dict[str, ArmMeasures]) -> tuple[ArmMeasures, list[str]]:
     return fast, tied
 
 
-def summary_lines(study: Study, measures: dict[str, dict[str, ArmMeasures]], threshold: float) -> list[str]:
-    """The plain-language summary: per learner the fastest arm, by how much, and how sure."""
+def summary_lines(
+    study: Study, measures: dict[str, dict[str, ArmMeasures]], contrasts: dict[str, ArmContrast], threshold: float,
+) -> list[str]:
+    """The plain-language summary: per learner the fastest arm, by how much, and how sure.
+
+    ``contrasts`` (:func:`~qlab.compare.measures.potential_against_start`) add a line per learner in it.
+    """
     lines = ["## Summary", ""]
     n_div, n_crash = failure_counts(study.runs)
     lines.append(f"- {len(study.runs)} runs read: {n_div} diverged, {n_crash} crashed or unfinished "
@@ -91,6 +128,13 @@ def summary_lines(study: Study, measures: dict[str, dict[str, ArmMeasures]], thr
                 f"vs {base.iqm_success.value:.2f} ({m.iqm_success.value - base.iqm_success.value:+.2f}); "
                 f"P(`{arm}` beats `none` on final success) = {_interval(m.improvement_success)}: "
                 f"{_verdict(m.improvement_success)}.")
+        if learner in contrasts:
+            c = contrasts[learner]
+            lines.append(
+                f"    - `{c.arm.arm}` against `{c.other.arm}`: {_speed_ratio(c.arm, c.other)}; IQM final success "
+                f"{c.arm.iqm_success.value:.2f} vs {c.other.iqm_success.value:.2f} ({c.iqm_success_difference:+.2f}); "
+                f"P(`{c.arm.arm}` beats `{c.other.arm}`) on final success {_interval(c.improvement_success)}, on "
+                f"final discounted return {_interval(c.improvement_return)}: {_reading(c)}.")
         failed = [(a, m.n_diverged, m.n_crashed) for a, m in ms.items() if m.n_diverged or m.n_crashed]
         if failed:
             lines.append("    - failures among reported runs: " + "; ".join(
@@ -121,8 +165,34 @@ def runs_lines(study: Study, selections: dict[str, Selection], requested_seeds: 
     return [*lines, *unreadable_lines(study), ""]
 
 
-def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: float, out: Path) -> list[str]:
-    """Learning curves, final scores, improvement over none, steps to threshold, profiles, overestimation."""
+def against_start_lines(contrasts: dict[str, ArmContrast]) -> list[str]:
+    """The section setting ``potential`` against ``none + Q started at Phi`` (empty when no learner has both)."""
+    if not contrasts:
+        return []
+    shaped, start = f"`{POTENTIAL_ARM}`", f"`{START_AT_POTENTIAL_ARM}`"
+    lines = ["## Potential shaping against Q started at Phi", "",
+             f"{shaped} learns on the Phi-shaped reward, {start} on the task's own reward with Q started at the "
+             "potential Phi. Wiewiora (2003) proves the two equivalent only for a true table fed the same experience, "
+             "while here a binned learner holds one Q per cell (started at Phi of the cell centre, whereas the shaping "
+             "bonus reads Phi at the exact state) and a featurised learner starts at a least-squares fit of Phi that "
+             "its features need not span, so the two arms can learn differently. P(a run of "
+             f"{shaped} scores higher than a run of {start}, ties counting half) on final scores, with 95% "
+             "percentile bootstrap intervals (runs of both arms resampled); median steps to the threshold as below.",
+             "",
+             f"| learner | P({shaped} beats {start}), final success rate | same, final discounted return | "
+             f"median steps, {shaped} / {start} | speed of {shaped} | IQM final success difference | reading |",
+             "|---|---|---|---|---|---|---|"]
+    lines += [f"| {lr} | {_interval(c.improvement_success)} | {_interval(c.improvement_return)} | "
+              f"{median_steps(c.arm)} / {median_steps(c.other)} | {_speed_ratio(c.arm, c.other)} | "
+              f"{c.arm.iqm_success.value:.2f} - {c.other.iqm_success.value:.2f} = {c.iqm_success_difference:+.2f} | "
+              f"{_reading(c)} |" for lr, c in contrasts.items()]
+    return [*lines, ""]
+
+
+def performance_lines(
+    measures: dict[str, dict[str, ArmMeasures]], contrasts: dict[str, ArmContrast], threshold: float, out: Path,
+) -> list[str]:
+    """Curves, final scores, improvement over none, potential against Q at Phi, steps, profiles, overestimation."""
     def panels(attr: str) -> dict:
         return {lr: {a: getattr(m, attr) for a, m in ms.items() if getattr(m, attr) is not None}
                 for lr, ms in measures.items()}
@@ -163,7 +233,7 @@ def performance_lines(measures: dict[str, dict[str, ArmMeasures]], threshold: fl
             out, "improvement.png")]
     else:
         lines.append("No learner has both a `none` arm and a shaped arm: nothing to compare.")
-    lines += ["", f"## Steps to a success rate of {threshold:g}", "",
+    lines += ["", *against_start_lines(contrasts), f"## Steps to a success rate of {threshold:g}", "",
               "First evaluation step at which a run's success rate reaches the threshold. Runs that never reach it "
               "(censored) count at the budget, so a median with half or more runs censored is a lower bound.", "",
               "| learner | arm | runs | reached | censored at budget | budget | median steps |",
@@ -210,10 +280,11 @@ def write_report(
     selections = {lr: select(study, lr, selection_seeds) for lr in study.learners()}
     measures = {lr: learner_measures(sel, threshold) for lr, sel in selections.items()}
     lines = [f"# Comparison report: {title}", "", CAUTION, "", *(context or [])]
-    lines += summary_lines(study, measures, threshold)
+    contrasts = potential_against_start(measures)
+    lines += summary_lines(study, measures, contrasts, threshold)
     lines += seed_warning(measures)
     lines += runs_lines(study, selections, selection_seeds)
-    lines += performance_lines(measures, threshold, out)
+    lines += performance_lines(measures, contrasts, threshold, out)
     if diagnostics:
         lines += exact.diagnostics_lines(study, selections, grid, out)
     else:

@@ -298,6 +298,8 @@ class LinearQ:
         self.learn_count += b
         return {
             "abs_td_error": float(np.abs(delta).mean()),
+            "q_mean": float(q[:b].mean()),  # Q(s, .) before the update
+            "q_max": float(q[:b].max()),
             "step_size": float(alpha.max()),
             "epsilon": float(self.epsilon(self.act_count)),
         }

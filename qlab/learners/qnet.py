@@ -72,10 +72,10 @@ class QNetConfig:
     huber_delta: float = 1.0
     weight_penalty: str = "none"  # "none", "l2" (sum w^2) or "l1" (sum |w|) over weight matrices
     penalty_coef: float = 0.0
-    double_q: bool = True
+    double_estimator: bool = True  # Double DQN targets: online net picks, target net scores (van Hasselt 2010)
     n_step: int = 1
     epsilon: ScheduleConfig = field(default_factory=lambda: ScheduleConfig("linear", 1.0, 0.05, 10_000.0))  # env steps
-    max_grad_norm: float = 10.0  # 0 disables gradient-norm clipping
+    grad_clip_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
 
     def __post_init__(self) -> None:
@@ -102,8 +102,8 @@ class QNetConfig:
             raise ValueError(f"penalty_coef must be a finite number >= 0, got {self.penalty_coef!r}")
         _require_int("n_step", self.n_step, 1)
         check_epsilon("epsilon", self.epsilon)
-        if not (np.isfinite(self.max_grad_norm) and self.max_grad_norm >= 0):
-            raise ValueError(f"max_grad_norm must be a finite number >= 0 (0 disables), got {self.max_grad_norm!r}")
+        if not (np.isfinite(self.grad_clip_norm) and self.grad_clip_norm >= 0):
+            raise ValueError(f"grad_clip_norm must be a finite number >= 0 (0 disables), got {self.grad_clip_norm!r}")
         _require_int("torch_threads", self.torch_threads, 1)
 
 
@@ -223,8 +223,8 @@ class QNetLearner:
         action = torch.from_numpy(sample.action).unsqueeze(1)
         with torch.no_grad():
             q_target_next = self.target(next_obs)
-            q_online_next = self.online(next_obs) if cfg.double_q else q_target_next
-            boot = bootstrap_values(q_online_next, q_target_next, cfg.double_q)
+            q_online_next = self.online(next_obs) if cfg.double_estimator else q_target_next
+            boot = bootstrap_values(q_online_next, q_target_next, cfg.double_estimator)
             y = torch.from_numpy(sample.reward).float() + torch.from_numpy(sample.discount).float() * boot
         q = self.online(obs).gather(1, action).squeeze(1)
         if cfg.loss == "huber":
@@ -239,7 +239,7 @@ class QNetLearner:
             penalty = torch.zeros(())
         self.optimizer.zero_grad(set_to_none=True)
         (td_loss + cfg.penalty_coef * penalty).backward()
-        max_norm = cfg.max_grad_norm if cfg.max_grad_norm > 0 else float("inf")
+        max_norm = cfg.grad_clip_norm if cfg.grad_clip_norm > 0 else float("inf")
         grad_norm = nn.utils.clip_grad_norm_(self.online.parameters(), max_norm)
         stats = torch.stack([td_loss.detach(), penalty.detach(), q.detach().mean(), q.detach().max(), grad_norm])
         td, pen, q_mean, q_max, norm = stats.tolist()

@@ -48,6 +48,8 @@ def require_choice(name: str, value: str, choices: tuple[str, ...]) -> str:
 
 def require_range(name: str, value: tuple[float, float], low: float = -np.inf) -> tuple[float, float]:
     """Return ``(lo, hi)`` with ``low <= lo <= hi``, else raise ``ValueError`` naming it."""
+    if len(value) != 2:
+        raise ValueError(f"{name} must be a (low, high) pair, got {value!r}")
     lo, hi = (float(v) for v in value)
     if not (np.isfinite(lo) and np.isfinite(hi) and low <= lo <= hi):
         raise ValueError(f"{name} must be a finite (low, high) pair with {low} <= low <= high, got {value!r}")
