@@ -65,6 +65,17 @@ def _usable(runs: list[Run]) -> list[Run]:
     return [r for r in runs if not r.failed and has_checkpoint(r.path / CHECKPOINT)]
 
 
+def _restored(runs: list[Run], label: str, notes: list[str]) -> list[tuple[Run, Learner, Any]]:
+    """Usable runs with their restored learner and task; a run that cannot be restored is noted, not fatal."""
+    out = []
+    for run in _usable(runs):
+        try:
+            out.append((run, *restore(run)))
+        except ValueError as err:
+            notes.append(f"{label}: run {run.name} could not be restored ({err}).")
+    return out
+
+
 def _representative(runs: list[Run]) -> Run:
     """The median run by final success (then final discounted return, then seed)."""
     ranked = sorted(runs, key=lambda r: (r.final["success_rate"], r.final["discounted_return"], r.seed))
@@ -103,15 +114,16 @@ def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[s
         maps = []
         for arm in sel.arms:
             runs = [r for r in sel.runs[arm] if has_grid_reference(r)]
-            usable = _usable(runs)
-            if len(usable) < len(runs):
-                notes.append(f"{learner_kind} / {arm}: {len(runs) - len(usable)} failed run(s) left out of the errors.")
-            if not usable:
+            if len(_usable(runs)) < len(runs):
+                notes.append(f"{learner_kind} / {arm}: {len(runs) - len(_usable(runs))} failed run(s) left out of "
+                             "the errors.")
+            restored = _restored(runs, f"{learner_kind} / {arm}", notes)
+            if not restored:
                 continue
+            usable = [run for run, _, _ in restored]
             approx, totals, remainders, losses = None, [], [], []
             shown = _representative(usable)
-            for run in usable:
-                learner, task = restore(run)
+            for run, learner, task in restored:
                 ref = reference(run, task)
                 if approx is None:
                     approx = diagnostics.approximation_error(learner, ref, network_steps=NETWORK_FIT_STEPS)
@@ -142,8 +154,8 @@ def lq_lines(selections: dict[str, Selection]) -> list[str]:
     for learner_kind, sel in selections.items():
         for arm in sel.arms:
             rows = []
-            for run in _usable([r for r in sel.runs[arm] if r.task_id == LQ_ID]):
-                learner, task = restore(run)
+            runs = [r for r in sel.runs[arm] if r.task_id == LQ_ID]
+            for run, learner, task in _restored(runs, f"{learner_kind} / {arm}", skipped):
                 try:
                     rows.append(diagnostics.lq_diagnostics(learner, task.A, task.B, task.Q, task.R,
                                                            float(run.flat["gamma"])))

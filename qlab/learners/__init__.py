@@ -43,9 +43,14 @@ def build_learner(
 ) -> Learner:
     """Construct learner ``kind`` from a plain dict of its config fields."""
     from omegaconf import OmegaConf
+    from omegaconf.errors import OmegaConfBaseException
 
     cls, config_cls = (load_target(t) for t in _entry(kind))
-    config = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(config_cls), settings))
+    schema = OmegaConf.structured(config_cls)
+    try:
+        config = OmegaConf.to_object(OmegaConf.merge(schema, settings))
+    except OmegaConfBaseException as err:  # e.g. a setting this version of the learner does not have
+        raise ValueError(f"{str(err).splitlines()[0]}; valid settings: {sorted(schema)}") from None
     return cls(observation_space, action_space, config, seed)
 
 
