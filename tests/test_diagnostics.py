@@ -1,9 +1,11 @@
-"""Q-function diagnostics on a small Dock grid (error split, policy loss, value maps) and on the LQ task."""
+"""Q-function diagnostics on a small Dock grid (error split, policy loss, value maps) and on the LQ task
+(gain and Q-matrix errors; maps, policy loss and error split against the closed form)."""
 
 from __future__ import annotations
 
 import numpy as np
 import pytest
+import scipy.linalg
 
 from qlab.compare.diagnostics import (
     approximation_error,
@@ -12,6 +14,11 @@ from qlab.compare.diagnostics import (
     grid_reference,
     learned_q_on_grid,
     lq_diagnostics,
+    lq_error_split,
+    lq_policy_loss,
+    lq_reference,
+    lq_states,
+    lq_value_maps,
     policy_loss,
     value_maps,
 )
@@ -206,3 +213,122 @@ def test_lq_diagnostics_needs_a_continuous_lstdq(task):
     learner = TabularQ(task.observation_space, task.action_space, TabularConfig(bins=[4]), seed=0)
     with pytest.raises(ValueError, match="learner must be an LSTDQ"):
         lq_diagnostics(learner, np.eye(2), np.ones((2, 1)), np.eye(2), np.eye(1), 0.9)
+
+
+def riccati(lq: LinearQuadratic, gamma: float) -> tuple[np.ndarray, np.ndarray]:
+    """P* and H* of the discounted LQ problem, straight from scipy (not through qlab.reference)."""
+    root = np.sqrt(gamma)
+    # scipy.linalg.solve_discrete_are; discounting as the undiscounted problem of (sqrt(gamma) A, sqrt(gamma) B)
+    # (Bertsekas 2017, Dynamic Programming and Optimal Control I, sec. 3.1; from memory)
+    P = scipy.linalg.solve_discrete_are(root * lq.A, root * lq.B, lq.Q, lq.R)
+    AB = np.hstack([lq.A, lq.B])
+    H = scipy.linalg.block_diag(lq.Q, lq.R) + gamma * AB.T @ P @ AB  # Q*(x, u) = c(x, u) + gamma V*(Ax + Bu)
+    return P, H
+
+
+def start_moment(lq: LinearQuadratic) -> np.ndarray:
+    """E[x0 x0'] for x0 uniform in the start box by 2-point Gauss-Legendre quadrature per axis.
+
+    numpy.polynomial.legendre.leggauss: n points integrate polynomials of degree <= 2n - 1 exactly.
+    """
+    nodes, weights = np.polynomial.legendre.leggauss(2)
+    mid, half = 0.5 * (lq.start_high + lq.start_low), 0.5 * (lq.start_high - lq.start_low)
+    points = np.stack(np.meshgrid(*[nodes] * mid.size, indexing="ij"), axis=-1).reshape(-1, mid.size)
+    w = np.prod(np.stack(np.meshgrid(*[weights] * mid.size, indexing="ij"), axis=-1).reshape(-1, mid.size), axis=1)
+    x = mid + half * points
+    return np.einsum("k,ki,kj->ij", w / w.sum(), x, x)
+
+
+NOISE = {"noise-free": None, "noisy": [[0.02, 0.005], [0.005, 0.01]]}
+GAMMA_LQ = 0.95
+
+
+def lq_task(noise) -> LinearQuadratic:
+    """The default double integrator with an off-centre start box (so the start mean matters)."""
+    return LinearQuadratic(noise_cov=noise, start_low=[-1.0, 0.0], start_high=[2.0, 0.5])
+
+
+def exact_lq_learner(lq: LinearQuadratic, gamma: float) -> LSTDQ:
+    """An LSTD-Q learner whose quadratic form is Q* (the noise constant included)."""
+    P, H = riccati(lq, gamma)
+    constant = 0.0 if lq.noise_cov is None else gamma / (1 - gamma) * np.trace(P @ lq.noise_cov)
+    learner = lq_learner(lq, gamma)
+    learner.head.weights[:] = learner.head.quad.from_matrix(-H, c=-constant)
+    assert learner.head.improve()
+    return learner
+
+
+@pytest.mark.parametrize("noise", NOISE.values(), ids=NOISE.keys())
+def test_lq_maps_loss_and_split_of_the_exact_q_function(noise):
+    lq = lq_task(noise)
+    P, _ = riccati(lq, GAMMA_LQ)
+    learner = exact_lq_learner(lq, GAMMA_LQ)
+    ref = lq_reference(lq, GAMMA_LQ)
+    maps = lq_value_maps(learner, ref, half_width=3.0, n_points=11)
+    x1, x2 = np.meshgrid(np.linspace(-3, 3, 11), np.linspace(-3, 3, 11), indexing="ij")
+    x = np.stack([x1.ravel(), x2.ravel()], axis=1)
+    # noise adds gamma / (1 - gamma) tr(P W) to the cost (Bertsekas 2017, sec. 3.1; from memory)
+    constant = 0.0 if noise is None else GAMMA_LQ / (1 - GAMMA_LQ) * np.trace(P @ np.asarray(noise))
+    v_star = -np.einsum("ni,ij,nj->n", x, P, x) - constant
+    np.testing.assert_allclose(maps.optimal_v.ravel(), v_star, rtol=1e-10)
+    np.testing.assert_allclose(maps.learned_v, maps.optimal_v, rtol=1e-10, atol=1e-10)
+    assert maps.action_distance.max() < 1e-10
+    assert lq_policy_loss(learner, ref) == pytest.approx(0.0, abs=1e-10)
+    split = lq_error_split(learner, ref, n_points=7, n_actions=3)
+    scale = np.abs(v_star).max()
+    assert split.total < 1e-10 * scale and split.approximation < 1e-10 * scale
+
+
+@pytest.mark.parametrize("noise", NOISE.values(), ids=NOISE.keys())
+def test_lq_policy_loss_of_a_perturbed_gain_is_the_lyapunov_gap(noise):
+    lq = lq_task(noise)
+    P, _ = riccati(lq, GAMMA_LQ)
+    learner = exact_lq_learner(lq, GAMMA_LQ)
+    K = learner.head.gain * np.array([[1.3, 0.8]])
+    learner.head.gain = K
+    closed = np.sqrt(GAMMA_LQ) * (lq.A - lq.B @ K)
+    # scipy.linalg.solve_discrete_lyapunov: P_K = Q + K'RK + gamma (A - BK)' P_K (A - BK)
+    P_K = scipy.linalg.solve_discrete_lyapunov(closed.T, lq.Q + K.T @ lq.R @ K)
+    expected = np.trace((P_K - P) @ start_moment(lq))
+    if noise is not None:
+        expected += GAMMA_LQ / (1 - GAMMA_LQ) * np.trace((P_K - P) @ np.asarray(noise))
+    loss = lq_policy_loss(learner, lq_reference(lq, GAMMA_LQ))
+    assert loss > 0 and loss == pytest.approx(expected, rel=1e-9)
+
+
+def test_lq_policy_loss_of_an_unstable_gain_is_infinite():
+    lq = lq_task(None)
+    learner = exact_lq_learner(lq, GAMMA_LQ)
+    learner.head.gain = -learner.head.gain
+    radius = np.abs(np.linalg.eigvals(np.sqrt(GAMMA_LQ) * (lq.A - lq.B @ learner.head.gain))).max()
+    assert radius >= 1.0  # numpy.linalg.eigvals: the discounted closed loop diverges
+    assert lq_policy_loss(learner, lq_reference(lq, GAMMA_LQ)) == np.inf
+
+
+def test_lq_error_split_of_a_perturbed_q_function():
+    lq = lq_task(None)
+    _, H = riccati(lq, GAMMA_LQ)
+    K_star = np.linalg.solve(H[2:, 2:], H[2:, :2])  # u* = -H_uu^-1 H_ux x
+    learner = lq_learner(lq, GAMMA_LQ)
+    delta = np.array([[0.5, 0.1, 0.0], [0.1, -0.2, 0.3], [0.0, 0.3, 0.4]])
+    learner.head.weights[:] = learner.head.quad.from_matrix(-(H + delta))
+    split = lq_error_split(learner, lq_reference(lq, GAMMA_LQ), half_width=2.0, n_points=5, n_actions=3,
+                           action_half_width=1.0)
+    points = [(x1, x2, -K_star[0] @ [x1, x2] + d) for x1 in np.linspace(-2, 2, 5) for x2 in np.linspace(-2, 2, 5)
+              for d in (-1.0, 0.0, 1.0)]
+    z = np.array(points)
+    total = np.sqrt(np.mean(np.einsum("ni,ij,nj->n", z, delta, z) ** 2))  # Q - Q* = -z' delta z
+    assert split.total == pytest.approx(total, rel=1e-9)
+    assert split.approximation < 1e-10 * np.abs(np.einsum("ni,ij,nj->n", z, H, z)).max()
+    assert split.remainder == pytest.approx(total, rel=1e-9)
+
+
+def test_lq_states_and_maps_need_two_state_dimensions():
+    axis, states = lq_states(3, 1.0, 41)
+    assert axis.size == round(41 ** (2 / 3)) and states.shape == (axis.size**3, 3)
+    lq = LinearQuadratic(A=np.eye(3), B=np.ones((3, 1)))
+    learner = lq_learner(lq, GAMMA_LQ)
+    with pytest.raises(ValueError, match="2-D state"):
+        lq_value_maps(learner, lq_reference(lq, GAMMA_LQ))
+    with pytest.raises(ValueError, match="half width"):
+        lq_states(2, 0.0, 5)

@@ -16,11 +16,13 @@ from pathlib import Path
 
 import numpy as np
 import pytest
+import scipy.linalg
 from hydra import compose, initialize_config_dir
 from matplotlib.colors import to_hex
-from scipy.stats import mannwhitneyu, trim_mean
+from scipy.stats import mannwhitneyu, trim_mean, uniform
 
 from qlab.compare import figures, stats
+from qlab.compare.exact import restore
 from qlab.compare.markup import markdown_to_html
 from qlab.compare.report import main
 from qlab.compare.runs import MAX_SETTING_NAME, START_AT_POTENTIAL_ARM, eval_matrix, load_study, setting_folder
@@ -419,3 +421,47 @@ def test_markdown_links_point_at_html_pages_and_are_escaped(tmp_path):
     assert parsed.found["code"] == ["[not a link](x.md)"]
     assert parsed.found["strong"] == ["bold"]
     assert "<b>" not in page and "x &lt; y &amp; z" in page
+
+
+LQ_TINY = ["task=linear_quadratic", "learner=lstdq", "learner.features=quadratic", "learner.refit_every=250",
+           "task.max_steps=100", "gamma=0.95", "budget_steps=1000", "evaluation.every_steps=500",
+           "evaluation.episodes=3", "tensorboard=false"]
+
+
+def test_lq_study_gets_the_closed_form_section_with_maps(tmp_path, monkeypatch):
+    folder = tmp_path / "lq"
+    register_configs()
+    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+        for seed in (0, 1):
+            run_experiment(compose(config_name="config", overrides=[*LQ_TINY, f"seed={seed}"]), folder / f"seed={seed}",
+                           bar=False)
+    saved = []
+    original = figures.save_png
+    monkeypatch.setattr(figures, "save_png", lambda fig, path: saved.append((path.name, fig)) or original(fig, path))
+    out = tmp_path / "report"
+    assert main([str(folder), "--out", str(out)]) == 0
+    markdown = (out / "report.md").read_text()
+    text = section(markdown, "Q-function diagnostics")
+    assert "### Linear-quadratic: learned Q against the closed form" in text
+    [row] = table(text)
+    assert row[:3] == ["lstdq", "none", "2"]
+    assert float(row[8]) < 1e-8  # quadratic features span Q*: no approximation error
+    assert row[9] == row[7]  # so the remainder is the whole error
+    losses = []
+    for run in load_study(folder).runs:
+        learner, task = restore(run)
+        K, root = learner.head.gain, np.sqrt(0.95)
+        P = scipy.linalg.solve_discrete_are(root * task.A, root * task.B, task.Q, task.R)  # scipy, discounted DARE
+        # scipy.linalg.solve_discrete_lyapunov: cost-to-go matrix of u = -K x
+        P_K = scipy.linalg.solve_discrete_lyapunov(root * (task.A - task.B @ K).T, task.Q + K.T @ task.R @ K)
+        moment = np.diag(uniform(loc=-1.0, scale=2.0).var() * np.ones(2))  # scipy.stats.uniform: x0 ~ U[-1, 1]^2
+        losses.append(np.trace((P_K - P) @ moment))
+    # scipy.stats.trim_mean(x, 0.25) is the interquartile mean (Agarwal et al. 2021)
+    assert row[10] == f"{trim_mean(losses, 0.25):.3g}"
+    assert "![lq_values_lstdq](lq_values_lstdq.png)" in markdown
+    assert (out / "lq_values_lstdq.png").read_bytes().startswith(PNG_SIGNATURE)
+    fig = dict(saved)["lq_values_lstdq.png"]
+    maps = [ax for ax in fig.axes if ax.get_images()]
+    assert len(maps) == 3
+    labels = {(ax.get_xlabel(), ax.get_ylabel()) for ax in maps}
+    assert labels == {("state x1: position (m)", "state x2: velocity (m/s)")}

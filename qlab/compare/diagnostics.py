@@ -9,6 +9,9 @@
 * :func:`error_split`: RMS error of Q against Q* split into approximation (the best fit of Q*
   inside the learner's function class, :func:`approximation_error`) and what learning left on top.
 * :func:`lq_diagnostics`: gain, Q-matrix and cost of an LSTD-Q learner on the linear-quadratic task.
+* :func:`lq_reference`, :func:`lq_value_maps`, :func:`lq_policy_loss`, :func:`lq_error_split`: the same
+  maps, policy loss and error split for the linear-quadratic task against the closed form, on a
+  uniform grid of states over a box (:func:`lq_states`).
 
 All grid quantities are over the live grid nodes (not the two absorbing nodes), every node and
 action weighted alike. Learners always see observations, ``task.observe(node)``, never raw states.
@@ -20,6 +23,7 @@ from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+import scipy.linalg
 import torch
 from numpy.typing import ArrayLike
 
@@ -28,8 +32,16 @@ from qlab.learners.lstdq import LSTDQ
 from qlab.learners.qnet import QNetLearner, build_mlp
 from qlab.reference.dock_grid import DockGrid
 from qlab.reference.finite_mdp import TransitionModel, evaluate_policy, value_iteration
-from qlab.reference.lq import check_lq_matrices, cost_to_go_matrix, gain_q_matrix, lq_solution
+from qlab.reference.lq import (
+    check_lq_matrices,
+    cost_to_go_matrix,
+    gain_q_matrix,
+    lq_solution,
+    noise_offset,
+    quadratic_cost,
+)
 from qlab.tasks.dock import Dock
+from qlab.tasks.linear_quadratic import LinearQuadratic
 
 #: An action counts as optimal when its Q* is within this much of V* (times max(1, max |Q*|)).
 TIE_TOLERANCE = 1e-9
@@ -240,6 +252,24 @@ def error_split(learner: Any, ref: GridReference, approximation: float | None = 
 # --- linear-quadratic -----------------------------------------------------------------------
 
 
+#: LQ maps and error split: states on a uniform grid over [-half width, half width] in every state dimension,
+#: this many points per axis of a 2-D state (higher dimensions: fewer per axis, about as many states in all).
+LQ_BOX_HALF_WIDTH = 3.0
+LQ_GRID_POINTS = 41
+#: error split: actions per state and action dimension, evenly spread over u*(x) +- LQ_ACTION_HALF_WIDTH
+LQ_ACTION_POINTS = 9
+LQ_ACTION_HALF_WIDTH = 3.0
+
+
+def _quadratic_head(learner: Any) -> Any:
+    """The quadratic form of a continuous-action LSTD-Q learner, else ``ValueError``."""
+    if not (isinstance(learner, LSTDQ) and learner.continuous):
+        raise ValueError(
+            f"learner must be an LSTDQ with continuous actions (quadratic features), got {type(learner).__name__}"
+        )
+    return learner.head
+
+
 @dataclass(frozen=True)
 class LQDiagnostics:
     """An LSTD-Q learner's quadratic Q-function against the closed form (Frobenius norms)."""
@@ -256,13 +286,9 @@ def lq_diagnostics(learner: Any, A: ArrayLike, B: ArrayLike, Q: ArrayLike, R: Ar
     its linear term, constant and control offset ``k`` are not scored (all zero at the optimum
     of the noise-free plant; noise moves only the constant).
     """
-    if not (isinstance(learner, LSTDQ) and learner.continuous):
-        raise ValueError(
-            f"learner must be an LSTDQ with continuous actions (quadratic features), got {type(learner).__name__}"
-        )
+    head = _quadratic_head(learner)
     A, B, Q, R = check_lq_matrices(A, B, Q, R)
     K_star, H_star = lq_solution(A, B, Q, R, gamma)
-    head = learner.head
     M, _, _ = head.quad.to_matrix(head.weights)
     if M.shape != H_star.shape:
         raise ValueError(f"the learner's Q matrix is {M.shape}, but A, B give a {H_star.shape} Q matrix")
@@ -280,3 +306,152 @@ def lq_diagnostics(learner: Any, A: ArrayLike, B: ArrayLike, Q: ArrayLike, R: Ar
         q_matrix_error=float(np.linalg.norm(-M - H_star) / np.linalg.norm(H_star)),
         cost_ratio=cost_ratio,
     )
+
+
+@dataclass(frozen=True)
+class LQReference:
+    """Closed-form answers of a linear-quadratic task at one discount (matrices in cost form)."""
+
+    A: np.ndarray
+    B: np.ndarray
+    Q: np.ndarray
+    R: np.ndarray
+    gamma: float
+    noise_cov: np.ndarray | None  # W, None when noise-free
+    gain: np.ndarray  # K* (m, n): u*(x) = -K* x
+    q_matrix: np.ndarray  # H* (n+m, n+m): Q*(x, u) = -[x; u]' H* [x; u] - offset
+    cost_to_go: np.ndarray  # P* (n, n): V*(x) = -x' P* x - offset
+    offset: float  # gamma / (1 - gamma) tr(P* W) of the process noise, 0 without noise
+    start_moment: np.ndarray  # E[x0 x0'] (n, n) under the task's start distribution
+
+    def v_star(self, x: np.ndarray) -> np.ndarray:
+        """V*(x) of the task's reward for a batch of states ``(N, n)`` -> ``(N,)``."""
+        return -np.einsum("ni,ij,nj->n", x, self.cost_to_go, x) - self.offset
+
+    def q_star(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """Q*(x, u) of the task's reward for a batch, ``(N,)``."""
+        return -quadratic_cost(self.q_matrix, x, u) - self.offset
+
+
+def lq_reference(task: LinearQuadratic, gamma: float) -> LQReference:
+    """Riccati solution of ``task`` at discount ``gamma`` (``qlab.reference.lq``), noise constant and start moment.
+
+    The start state is uniform in ``[start_low, start_high]``: ``E[x0 x0'] = mu mu' + diag((high - low)^2 / 12)``.
+    With process noise, ``gamma`` must be < 1 (the noise cost diverges at 1).
+    """
+    A, B, Q, R = check_lq_matrices(task.A, task.B, task.Q, task.R)
+    K, H = lq_solution(A, B, Q, R, gamma)
+    P = cost_to_go_matrix(A, B, Q, R, gamma)
+    W = task.noise_cov
+    mid = 0.5 * (task.start_low + task.start_high)
+    return LQReference(
+        A=A, B=B, Q=Q, R=R, gamma=float(gamma), noise_cov=W, gain=K, q_matrix=H, cost_to_go=P,
+        offset=0.0 if W is None else noise_offset(P, W, gamma),
+        start_moment=np.outer(mid, mid) + np.diag((task.start_high - task.start_low) ** 2 / 12.0),
+    )
+
+
+def _check_box(half_width: float, n_points: int, what: str) -> None:
+    if not (np.isfinite(half_width) and half_width > 0):
+        raise ValueError(f"{what} half width must be a finite number > 0, got {half_width!r}")
+    if int(n_points) != n_points or n_points < 2:
+        raise ValueError(f"{what} points must be an integer >= 2, got {n_points!r}")
+
+
+def lq_states(n_state: int, half_width: float = LQ_BOX_HALF_WIDTH,
+              n_points: int = LQ_GRID_POINTS) -> tuple[np.ndarray, np.ndarray]:
+    """A uniform grid over ``[-half_width, half_width]^n_state``: the axis ``(k,)`` and the states ``(k^n, n)``.
+
+    ``k = n_points`` for one or two dimensions, else ``max(2, round(n_points^(2 / n_state)))``; the
+    states are in C order (the last dimension varies fastest).
+    """
+    _check_box(half_width, n_points, "state grid")
+    per_axis = int(n_points) if n_state <= 2 else max(2, round(n_points ** (2.0 / n_state)))
+    axis = np.linspace(-half_width, half_width, per_axis)
+    mesh = np.meshgrid(*[axis] * n_state, indexing="ij")
+    return axis, np.stack([g.ravel() for g in mesh], axis=1)
+
+
+def _learned_control(head: Any, x: np.ndarray) -> np.ndarray:
+    """The learner's greedy control ``u = -K x + k`` without clipping (the closed form has no bounds)."""
+    return head.offset - x @ head.gain.T
+
+
+@dataclass(frozen=True)
+class LQMaps:
+    """Pictures over a grid of 2-D states, each ``(n_points, n_points)`` indexed ``[x1, x2]``."""
+
+    x1: np.ndarray  # (n_points,)
+    x2: np.ndarray  # (n_points,)
+    learned_v: np.ndarray  # Q of the learner at its greedy control (max_u Q when Q is concave in u)
+    optimal_v: np.ndarray  # V* of the task's reward
+    action_distance: np.ndarray  # |u(x) - u*(x)| (Euclidean, the task's control units)
+    labels: tuple[str, str]  # axis labels of x1 and x2
+
+
+def lq_value_maps(learner: Any, ref: LQReference, half_width: float = LQ_BOX_HALF_WIDTH,
+                  n_points: int = LQ_GRID_POINTS, labels: tuple[str, str] = ("state x1", "state x2")) -> LQMaps:
+    """Learned V, V* and the distance between the learner's greedy control and u* on a grid of 2-D states.
+
+    Learned V is ``Q(x, u(x))`` with ``u(x) = -K x + k`` the learner's unclipped greedy control,
+    which is ``max_u Q(x, u)`` whenever its quadratic form is concave in ``u`` (the learner keeps
+    its previous gain otherwise). Raises ``ValueError`` unless the state is 2-D.
+    """
+    head = _quadratic_head(learner)
+    if ref.A.shape[0] != 2:
+        raise ValueError(f"value maps need a 2-D state, got {ref.A.shape[0]} state dimensions")
+    axis, x = lq_states(2, half_width, n_points)
+    u = _learned_control(head, x)
+    shape = (axis.size, axis.size)
+    return LQMaps(
+        x1=axis,
+        x2=axis.copy(),
+        learned_v=learner.q(x, u).reshape(shape),
+        optimal_v=ref.v_star(x).reshape(shape),
+        action_distance=np.linalg.norm(u + x @ ref.gain.T, axis=1).reshape(shape),
+        labels=labels,
+    )
+
+
+def lq_policy_loss(learner: Any, ref: LQReference) -> float:
+    """``E[V*(x0) - V^K(x0)]`` over the task's start distribution for the learner's gain ``K`` (inf if unstable).
+
+    ``V^K(x) = -x' P_K x - gamma / (1 - gamma) tr(P_K W)`` with ``P_K`` from the discrete Lyapunov
+    equation of ``sqrt(gamma) (A - B K)``; the learner's control offset ``k`` and the task's
+    control clipping are not scored (the closed form has neither).
+    """
+    K = _quadratic_head(learner).gain
+    closed = np.sqrt(ref.gamma) * (ref.A - ref.B @ K)
+    if np.max(np.abs(np.linalg.eigvals(closed))) >= 1.0:
+        return float("inf")
+    P_K = scipy.linalg.solve_discrete_lyapunov(closed.T, ref.Q + K.T @ ref.R @ K)
+    gap = 0.5 * (P_K + P_K.T) - ref.cost_to_go
+    loss = np.trace(gap @ ref.start_moment)
+    if ref.noise_cov is not None:
+        loss += ref.gamma / (1.0 - ref.gamma) * np.trace(gap @ ref.noise_cov)
+    return float(loss)
+
+
+def lq_error_split(learner: Any, ref: LQReference, half_width: float = LQ_BOX_HALF_WIDTH,
+                   n_points: int = LQ_GRID_POINTS, n_actions: int = LQ_ACTION_POINTS,
+                   action_half_width: float = LQ_ACTION_HALF_WIDTH) -> ErrorSplit:
+    """RMS of Q - Q* over the states of :func:`lq_states` x controls ``u*(x) + d``, ``d`` on an even grid.
+
+    Quadratic features of ``[x; u]`` span Q* exactly, so the approximation error is 0 in exact
+    arithmetic; it is still computed (least squares of Q* on the learner's features over the same
+    points, so it shows round-off only) and the remainder is sqrt(total^2 - approximation^2).
+    """
+    head = _quadratic_head(learner)
+    _check_box(action_half_width, n_actions, "action grid")
+    _, x = lq_states(ref.A.shape[0], half_width, n_points)
+    m = ref.B.shape[1]
+    _, shifts = lq_states(1, action_half_width, n_actions)
+    shifts = np.stack([g.ravel() for g in np.meshgrid(*[shifts[:, 0]] * m, indexing="ij")], axis=1)
+    states = np.repeat(x, shifts.shape[0], axis=0)
+    controls = ((-x @ ref.gain.T)[:, None, :] + shifts[None]).reshape(-1, m)
+    q_star = ref.q_star(states, controls)
+    total = _rms(learner.q(states, controls) - q_star)
+    phi = head.q_features(states, controls)
+    fit = phi @ np.linalg.lstsq(phi, q_star, rcond=None)[0]
+    approx = _rms(fit - q_star)
+    return ErrorSplit(total=total, approximation=approx, remainder=float(np.sqrt(max(total**2 - approx**2, 0.0))))

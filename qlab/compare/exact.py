@@ -144,32 +144,76 @@ def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[s
     return [*lines, "", *(f"- {n}" for n in notes), "", maps_note, "", *images]
 
 
-def lq_lines(selections: dict[str, Selection]) -> list[str]:
-    """Continuous-action LSTD-Q on the linear-quadratic task against the closed form."""
+def _lq_labels(run: Run) -> tuple[str, str]:
+    """Axis labels of the state: the default plant (no A, B given) is a double integrator in metres and m/s."""
+    if run.flat.get("task.A") is None and run.flat.get("task.B") is None:
+        return "state x1: position (m)", "state x2: velocity (m/s)"
+    return "state x1", "state x2"
+
+
+def _finite_iqm(values: list[float]) -> str:
+    finite = np.array([v for v in values if np.isfinite(v)])
+    return f"{iqm(finite):.3g}" if finite.size else "inf"
+
+
+def lq_lines(selections: dict[str, Selection], out: Path) -> list[str]:
+    """Continuous-action LSTD-Q on the linear-quadratic task against the closed form (maps written to ``out``)."""
+    box = diagnostics.LQ_BOX_HALF_WIDTH
     lines = ["Closed-form reference (discounted Riccati solution). Relative Frobenius errors of the gain and of the "
-             "Q matrix, and the cost of the learned gain over the optimal cost (1 is optimal), IQM over runs.", "",
-             "| learner | arm | runs | gain error | Q-matrix error | cost ratio | unstable gains |",
-             "|---|---|---|---|---|---|---|"]
-    skipped = []
+             "Q matrix, and the cost of the learned gain over the optimal cost (1 is optimal). Q errors are RMS of "
+             f"Q - Q* over a uniform grid of states in [-{box:g}, {box:g}] per state dimension x "
+             f"{diagnostics.LQ_ACTION_POINTS} controls per action dimension in u*(x) +- "
+             f"{diagnostics.LQ_ACTION_HALF_WIDTH:g}. Quadratic features span Q* exactly, so the approximation error "
+             "is 0 (computed by least squares, it shows round-off only) and the remainder is the whole error. The "
+             "policy loss is V*(x0) - V^K(x0) of the learned gain K (Lyapunov equation; its offset and the control "
+             "clipping not scored), averaged over the start distribution; infinite for an unstable gain. IQM over "
+             "runs (finite values only).", "",
+             "| learner | arm | runs | gain error | Q-matrix error | cost ratio | unstable gains | total RMS error | "
+             "approximation RMS | remainder RMS | policy loss |",
+             "|---|---|---|---|---|---|---|---|---|---|---|"]
+    refs: dict[str, diagnostics.LQReference] = {}
+    skipped, images = [], []
     for learner_kind, sel in selections.items():
+        maps = []
         for arm in sel.arms:
-            rows = []
+            rows, splits, losses = [], [], []
             runs = [r for r in sel.runs[arm] if r.task_id == LQ_ID]
-            for run, learner, task in _restored(runs, f"{learner_kind} / {arm}", skipped):
+            restored = _restored(runs, f"{learner_kind} / {arm}", skipped)
+            shown = _representative([run for run, _, _ in restored]) if restored else None
+            for run, learner, task in restored:
+                gamma = float(run.flat["gamma"])
                 try:
-                    rows.append(diagnostics.lq_diagnostics(learner, task.A, task.B, task.Q, task.R,
-                                                           float(run.flat["gamma"])))
+                    rows.append(diagnostics.lq_diagnostics(learner, task.A, task.B, task.Q, task.R, gamma))
+                    key = repr(_task_key(run))
+                    if key not in refs:
+                        refs[key] = diagnostics.lq_reference(task, gamma)
+                    ref = refs[key]
+                    splits.append(diagnostics.lq_error_split(learner, ref))
+                    losses.append(diagnostics.lq_policy_loss(learner, ref))
                 except ValueError as err:
                     skipped.append(f"{learner_kind} / {arm}: {err}")
                     break
-            if rows:
-                ratios = np.array([d.cost_ratio for d in rows])
+                if run is shown and task.A.shape[0] == 2:
+                    maps.append((arm, run.name, diagnostics.lq_value_maps(learner, ref, labels=_lq_labels(run))))
+                elif run is shown:
+                    skipped.append(f"maps of {learner_kind} / {arm}: the state is {task.A.shape[0]}-D (maps need 2-D)")
+            if rows and len(splits) == len(rows):
+                ratios = [d.cost_ratio for d in rows]
                 lines.append(
                     f"| {learner_kind} | {arm} | {len(rows)} | {iqm([d.gain_error for d in rows]):.3g} | "
-                    f"{iqm([d.q_matrix_error for d in rows]):.3g} | "
-                    f"{iqm(ratios[np.isfinite(ratios)]) if np.isfinite(ratios).any() else float('inf'):.3g} | "
-                    f"{int((~np.isfinite(ratios)).sum())} |")
-    return lines + [""] + [f"- skipped {s}" for s in sorted(set(skipped))] + [""]
+                    f"{iqm([d.q_matrix_error for d in rows]):.3g} | {_finite_iqm(ratios)} | "
+                    f"{int((~np.isfinite(ratios)).sum())} | {iqm([e.total for e in splits]):.3g} | "
+                    f"{iqm([e.approximation for e in splits]):.2g} | {iqm([e.remainder for e in splits]):.3g} | "
+                    f"{_finite_iqm(losses)} |")
+        if maps:
+            name = f"lq_values_{learner_kind}.png"
+            figures.save_png(figures.lq_value_map_figure(learner_kind, maps), out / name)
+            images += [f"![lq_values_{learner_kind}]({name})", ""]
+    maps_note = ("Maps of one representative run per learner and arm (the median run by final discounted return) "
+                 f"over states in [-{box:g}, {box:g}]^2: learned V (Q at the learner's greedy control), V* and the "
+                 "distance of the learner's greedy control from u* (both unclipped).")
+    return [*lines, "", *(f"- skipped {s}" for s in sorted(set(skipped))), "",
+            *([maps_note, "", *images] if images else [])]
 
 
 def audit_lines(study: Study, grid: int) -> list[str]:
@@ -208,7 +252,7 @@ def diagnostics_lines(study: Study, selections: dict[str, Selection], grid: int,
     if any(has_grid_reference(r) for r in runs):
         lines += ["### Dock: learned Q against the exact grid reference", "", *dock_lines(selections, grid, out)]
     if any(r.task_id == LQ_ID for r in runs):
-        lines += ["### Linear-quadratic: learned Q against the closed form", "", *lq_lines(selections)]
+        lines += ["### Linear-quadratic: learned Q against the closed form", "", *lq_lines(selections, out)]
     others = sorted({r.task_id for r in runs if not has_grid_reference(r) and r.task_id != LQ_ID})
     if others:
         lines += [f"No exact answer for {', '.join(others)} (or Dock with noise or continuous thrust): "

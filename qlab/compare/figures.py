@@ -14,7 +14,7 @@ from matplotlib.colors import ListedColormap
 from matplotlib.figure import Figure
 from PIL import Image
 
-from qlab.compare.diagnostics import ValueMaps
+from qlab.compare.diagnostics import LQMaps, ValueMaps
 from qlab.compare.measures import ArmMeasures, Band, Estimate
 from qlab.compare.runs import START_AT_POTENTIAL_ARM, TaskSetting, arm_sort_key, position
 
@@ -148,31 +148,63 @@ def settings_figure(
     return fig
 
 
+def _map_image(ax, data: np.ndarray, extent: tuple, cmap, lo: float, hi: float, labels: tuple[str, str],
+               title: str):
+    """One map panel: ``data`` indexed ``[x, y]`` drawn over ``extent`` with labelled axes."""
+    image = ax.imshow(data.T, origin="lower", aspect="auto", extent=extent, cmap=cmap, vmin=lo, vmax=hi,
+                      interpolation="nearest")
+    ax.set_xlabel(labels[0], fontsize=8.5)
+    ax.set_ylabel(labels[1], fontsize=8.5)
+    ax.tick_params(labelsize=8)
+    _title(ax, title)
+    return image
+
+
+def _value_pair(fig: Figure, row, extent: tuple, learned: np.ndarray, optimal: np.ndarray, labels: tuple[str, str],
+                titles: tuple[str, str], run: str) -> None:
+    """Learned V and V* side by side on one colour scale, with the run's name underneath."""
+    both = np.concatenate([learned.ravel(), optimal.ravel()])
+    both = both[np.isfinite(both)]
+    vmin, vmax = (float(both.min()), float(both.max())) if both.size else (0.0, 1.0)
+    image = _map_image(row[0], learned, extent, "viridis", vmin, vmax, labels, titles[0])
+    _map_image(row[1], optimal, extent, "viridis", vmin, vmax, labels, titles[1])
+    fig.colorbar(image, ax=list(row[:2]), shrink=0.85, label="value (unitless)").ax.tick_params(labelsize=7)
+    row[0].annotate(f"run {run}", (0.0, -0.32), xycoords="axes fraction", fontsize=7, color="#555555")
+
+
+def _map_grid(n_rows: int) -> tuple[Figure, np.ndarray]:
+    fig = Figure(figsize=(11.5, 2.7 * n_rows + 0.3), layout="constrained")
+    FigureCanvasAgg(fig)
+    return fig, fig.subplots(n_rows, 3, squeeze=False)
+
+
 def value_map_figure(learner: str, maps: list[tuple[str, str, ValueMaps]]) -> Figure:
     """Rows of (arm, run name, maps); columns learned V, V* of the training reward, greedy actions not optimal."""
-    fig = Figure(figsize=(11.5, 2.7 * len(maps) + 0.3), layout="constrained")
-    FigureCanvasAgg(fig)
-    axes = fig.subplots(len(maps), 3, squeeze=False)
+    fig, axes = _map_grid(len(maps))
     flags = ListedColormap(["#f2f2f2", "#c0392b"])
+    labels = ("position (m)", "velocity (m/s)")
     for row, (arm, run, m) in zip(axes, maps, strict=True):
         extent = (m.positions_m[0], m.positions_m[-1], m.velocities_m_s[0], m.velocities_m_s[-1])
-        both = np.concatenate([m.learned_v.ravel(), m.optimal_v.ravel()])
-        both = both[np.isfinite(both)]
-        vmin, vmax = (float(both.min()), float(both.max())) if both.size else (0.0, 1.0)
-        wrong = float(np.mean(m.disagreement))
-        panels = ((m.learned_v, f"{learner} / {arm}: learned V", "viridis", vmin, vmax),
-                  (m.optimal_v, "V* of its training reward", "viridis", vmin, vmax),
-                  (m.disagreement.astype(float), f"red: greedy action not optimal ({wrong:.0%})", flags, 0.0, 1.0))
-        images = []
-        for ax, (data, title, cmap, lo, hi) in zip(row, panels, strict=True):
-            images.append(ax.imshow(data.T, origin="lower", aspect="auto", extent=extent, cmap=cmap, vmin=lo, vmax=hi,
-                                    interpolation="nearest"))
-            ax.set_xlabel("position (m)", fontsize=8.5)
-            ax.set_ylabel("velocity (m/s)", fontsize=8.5)
-            ax.tick_params(labelsize=8)
-            _title(ax, title)
-        fig.colorbar(images[0], ax=list(row[:2]), shrink=0.85, label="value (unitless)").ax.tick_params(labelsize=7)
-        row[0].annotate(f"run {run}", (0.0, -0.32), xycoords="axes fraction", fontsize=7, color="#555555")
+        _value_pair(fig, row, extent, m.learned_v, m.optimal_v, labels,
+                    (f"{learner} / {arm}: learned V", "V* of its training reward"), run)
+        _map_image(row[2], m.disagreement.astype(float), extent, flags, 0.0, 1.0, labels,
+                   f"red: greedy action not optimal ({np.mean(m.disagreement):.0%})")
+    return fig
+
+
+def lq_value_map_figure(learner: str, maps: list[tuple[str, str, LQMaps]]) -> Figure:
+    """Linear-quadratic rows of (arm, run name, maps); columns learned V, V*, distance of the greedy control from u*."""
+    fig, axes = _map_grid(len(maps))
+    for row, (arm, run, m) in zip(axes, maps, strict=True):
+        extent = (m.x1[0], m.x1[-1], m.x2[0], m.x2[-1])
+        _value_pair(fig, row, extent, m.learned_v, m.optimal_v, m.labels,
+                    (f"{learner} / {arm}: learned V", "V* (closed form)"), run)
+        finite = m.action_distance[np.isfinite(m.action_distance)]
+        top = float(finite.max()) if finite.size and finite.max() > 0 else 1.0
+        image = _map_image(row[2], m.action_distance, extent, "magma_r", 0.0, top, m.labels,
+                           "|greedy control - u*|")
+        fig.colorbar(image, ax=row[2], shrink=0.85, label="|u - u*| (control units)").ax.tick_params(
+            labelsize=7)
     return fig
 
 
