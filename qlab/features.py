@@ -129,6 +129,14 @@ class FeatureMap:
         """Features as a ``scipy.sparse`` CSR array ``(B, n_features)``."""
         return rows_to_csr(*self.rows(obs), self.n_features)
 
+    def _set_box(self, low: np.ndarray, high: np.ndarray, bins: list[int]) -> np.ndarray:
+        """Store the box ``[low, high]`` and its dimension; return the checked per-dimension ``bins``."""
+        self.low = np.asarray(low, dtype=np.float64)
+        self.high = np.asarray(high, dtype=np.float64)
+        self.dim = self.low.size
+        check_bins("bins", bins)
+        return per_dim("bins", bins, self.dim).astype(np.int64)
+
 
 def rows_to_csr(idx: np.ndarray, val: np.ndarray, n_cols: int) -> sp.csr_array:
     """Sparse rows ``(idx, val)``, both ``(B, k)``, as a CSR array ``(B, n_cols)``."""
@@ -141,11 +149,7 @@ class GridBins(FeatureMap):
     """A uniform grid of ``bins[k]`` cells along dimension ``k`` between ``low`` and ``high``."""
 
     def __init__(self, low: np.ndarray, high: np.ndarray, bins: list[int]):
-        self.low = np.asarray(low, dtype=np.float64)
-        self.high = np.asarray(high, dtype=np.float64)
-        self.dim = self.low.size
-        check_bins("bins", bins)
-        self.bins = per_dim("bins", bins, self.dim).astype(np.int64)
+        self.bins = self._set_box(low, high, bins)
         self.width = (self.high - self.low) / self.bins
         self._strides = c_order_strides(self.bins)
         self.n_features = int(np.prod(self.bins))
@@ -177,11 +181,7 @@ class TileCoder(FeatureMap):
             raise ValueError(f"tile_offsets must be one of {list(TILE_OFFSETS)}, got {offsets!r}")
         if int(n_tilings) != n_tilings or n_tilings < 1:
             raise ValueError(f"n_tilings must be an integer >= 1, got {n_tilings!r}")
-        self.low = np.asarray(low, dtype=np.float64)
-        self.high = np.asarray(high, dtype=np.float64)
-        self.dim = self.low.size
-        check_bins("bins", bins)
-        self.bins = per_dim("bins", bins, self.dim).astype(np.int64)
+        self.bins = self._set_box(low, high, bins)
         self.width = (self.high - self.low) / self.bins
         self.n_tilings = int(n_tilings)
         step = np.ones(self.dim) if offsets == "uniform" else 2.0 * np.arange(1, self.dim + 1) - 1.0
@@ -213,11 +213,7 @@ class GaussianRBF(FeatureMap):
     def __init__(self, low: np.ndarray, high: np.ndarray, bins: list[int], width: float = 1.0):
         if not (np.isfinite(width) and width > 0):
             raise ValueError(f"rbf_width must be a finite number > 0, got {width!r}")
-        self.low = np.asarray(low, dtype=np.float64)
-        self.high = np.asarray(high, dtype=np.float64)
-        self.dim = self.low.size
-        check_bins("bins", bins)
-        counts = per_dim("bins", bins, self.dim).astype(np.int64)
+        counts = self._set_box(low, high, bins)
         axes = [
             np.linspace(lo, hi, n) if n > 1 else np.array([0.5 * (lo + hi)])
             for lo, hi, n in zip(self.low, self.high, counts, strict=True)

@@ -5,6 +5,7 @@ from __future__ import annotations
 import numpy as np
 import pytest
 from gymnasium import spaces
+from small_mdp import GAMMA, N_ACTIONS, N_STATES, random_mdp, state_space
 
 from qlab.checkpoint import load_checkpoint, save_checkpoint
 from qlab.learners import build_learner
@@ -12,19 +13,6 @@ from qlab.learners.protocol import Transitions
 from qlab.learners.schedules import ScheduleConfig
 from qlab.learners.tabular import TabularConfig, TabularQ
 from qlab.reference import value_iteration
-
-N_STATES, N_ACTIONS, GAMMA = 5, 2, 0.5
-
-
-def random_mdp(seed: int) -> tuple[np.ndarray, np.ndarray]:
-    """A seeded random MDP: P[a, s, s'] from a flat Dirichlet, R[s, a] uniform in [0, 1]."""
-    rng = np.random.default_rng(seed)
-    return rng.dirichlet(np.ones(N_STATES), size=(N_ACTIONS, N_STATES)), rng.uniform(0.0, 1.0, (N_STATES, N_ACTIONS))
-
-
-def state_space() -> spaces.Box:
-    """1-D observation = state index; with ``bins = N_STATES`` every state gets its own cell."""
-    return spaces.Box(-0.5, N_STATES - 0.5, shape=(1,), dtype=np.float32)
 
 
 def sweep(P: np.ndarray, R: np.ndarray, rng: np.random.Generator) -> Transitions:
