@@ -57,15 +57,21 @@ def episode_seed(run_seed: int, episode: int) -> int:
     return int(np.random.SeedSequence([run_seed, episode]).generate_state(1)[0])
 
 
-def make_env(task: DictConfig, shaping_variant: str, gamma: float, progress_scale: float | None) -> gym.Env:
-    """The task from its config, wrapped in a shaping variant unless ``none``."""
+def make_task(task: DictConfig) -> gym.Env:
+    """The task from its config (``task.id`` plus its parameters), unshaped."""
     params = to_container(task)
     env_id = params.pop("id")
-    params = params.pop("params", params)
-    env = gym.make(env_id, **params)
-    if shaping_variant != "none":
-        env = ShapedReward(env, shaping_variant, gamma, progress_scale)
-    return env
+    return gym.make(env_id, **params.pop("params", params))
+
+
+def shaped(env: gym.Env, shaping_variant: str, gamma: float, progress_scale: float | None) -> gym.Env:
+    """``env`` wrapped in a shaping variant unless ``none``."""
+    return env if shaping_variant == "none" else ShapedReward(env, shaping_variant, gamma, progress_scale)
+
+
+def make_env(task: DictConfig, shaping_variant: str, gamma: float, progress_scale: float | None) -> gym.Env:
+    """The task from its config, wrapped in a shaping variant unless ``none``."""
+    return shaped(make_task(task), shaping_variant, gamma, progress_scale)
 
 
 def evaluate(learner: Learner, env: gym.Env, start_seeds: list[int], gamma: float) -> dict[str, float]:
@@ -164,12 +170,11 @@ def build_run(cfg: DictConfig) -> tuple[gym.Env, gym.Env, Learner]:
 
     torch.set_num_threads(cfg.torch_threads)
     try:
-        make_env(cfg.task, "none", cfg.gamma, None)
+        tasks = [make_task(cfg.task) for _ in range(2)]  # training and evaluation copies
     except (ValueError, TypeError) as err:  # TypeError: a parameter the task does not take (e.g. +task.x=1)
         raise ValueError(f"task ({cfg.task.id}): {err}") from err
     try:
-        env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
-        eval_env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
+        env, eval_env = (shaped(t, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale) for t in tasks)
     except ValueError as err:
         raise ValueError(f"shaping: {err}") from err
     settings = to_container(cfg.learner)

@@ -24,7 +24,7 @@ from qlab.compare.runs import Run, Study
 from qlab.compare.selection import Selection
 from qlab.compare.stats import iqm
 from qlab.config import to_container
-from qlab.experiment import CHECKPOINT, make_env
+from qlab.experiment import CHECKPOINT, make_env, make_task
 from qlab.learners import Learner, build_learner
 
 DOCK_ID = "qlab/Dock-v0"
@@ -136,9 +136,8 @@ def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[s
             lines.append(f"| {learner_kind} | {arm} | {len(usable)} | {_cell(totals)} | {approx:.3g} | "
                          f"{_cell(remainders)} | {_cell(losses)} |")
         if maps:
-            name = f"values_{learner_kind}.png"
-            figures.save_png(figures.value_map_figure(learner_kind, maps), out / name)
-            images += [f"![values_{learner_kind}]({name})", ""]
+            fig = figures.value_map_figure(learner_kind, maps)
+            images += [figures.save_figure(fig, out, f"values_{learner_kind}.png"), ""]
     maps_note = ("Maps of one representative run per learner and arm (the median run by final success): learned V, "
                  "V* of its training reward and where its greedy action is not optimal for that reward.")
     return [*lines, "", *(f"- {n}" for n in notes), "", maps_note, "", *images]
@@ -206,9 +205,8 @@ def lq_lines(selections: dict[str, Selection], out: Path) -> list[str]:
                     f"{iqm([e.approximation for e in splits]):.2g} | {iqm([e.remainder for e in splits]):.3g} | "
                     f"{_finite_iqm(losses)} |")
         if maps:
-            name = f"lq_values_{learner_kind}.png"
-            figures.save_png(figures.lq_value_map_figure(learner_kind, maps), out / name)
-            images += [f"![lq_values_{learner_kind}]({name})", ""]
+            fig = figures.lq_value_map_figure(learner_kind, maps)
+            images += [figures.save_figure(fig, out, f"lq_values_{learner_kind}.png"), ""]
     maps_note = ("Maps of one representative run per learner and arm (the median run by final discounted return) "
                  f"over states in [-{box:g}, {box:g}]^2: learned V (Q at the learner's greedy control), V* and the "
                  "distance of the learner's greedy control from u* (both unclipped).")
@@ -242,7 +240,7 @@ def audit_lines(study: Study, grid: int) -> list[str]:
 
 def build_task(run: Run) -> Any:
     """The run's task (unwrapped), built from its config."""
-    return make_env(run.config.task, "none", run.config.gamma, None).unwrapped
+    return make_task(run.config.task).unwrapped
 
 
 def diagnostics_lines(study: Study, selections: dict[str, Selection], grid: int, out: Path) -> list[str]:
