@@ -11,7 +11,6 @@ import dataclasses
 import hashlib
 import json
 import shutil
-import sys
 import time
 from collections import defaultdict
 from collections.abc import Callable
@@ -26,6 +25,7 @@ from omegaconf import DictConfig, OmegaConf
 from qlab.checkpoint import has_checkpoint, load_checkpoint, save_checkpoint
 from qlab.config import flatten, to_container, validate
 from qlab.learners import LEARNERS, Learner, Transitions, build_learner, load_target
+from qlab.progress import Progress
 from qlab.recording import MARKER, SUMMARY, Recorder, atomic_write_json, atomic_write_text
 from qlab.shaping import ShapedReward
 
@@ -120,36 +120,6 @@ def start_at_potential(learner: Learner, kind: str, env: gym.Env) -> None:
     if not hasattr(task, "potential"):
         raise ValueError(f"shaping.start_at_potential needs a task with a potential, got {type(task).__name__}")
     learner.initialise_from(task.potential)
-
-
-class Progress:
-    """Progress of one run: a redrawn bar on a terminal, a line per tenth of the budget when piped;
-    in a sweep (``bar=False``) only the closing line, one per run."""
-
-    def __init__(self, label: str, total: int, bar: bool, stream=sys.stderr):
-        self.label, self.total, self.bar, self.stream = label, total, bar, stream
-        self.live = bar and stream.isatty()
-        self.start = time.perf_counter()
-        self.shown = -1
-
-    def update(self, step: int, note: str) -> None:
-        """Show ``step`` of the budget with a short note (e.g. the latest evaluation)."""
-        if not self.bar:
-            return
-        pct = int(100 * step / self.total)
-        if pct == self.shown or (not self.live and pct // 10 == self.shown // 10):
-            return
-        self.shown = pct
-        text = f"[{'#' * (pct // 4):<25}] {pct:3d}%  step {step:,}/{self.total:,}  {note}"
-        self.stream.write(f"\r{text:<100}" if self.live else text + "\n")
-        self.stream.flush()
-
-    def close(self, message: str) -> None:
-        """The run's one closing line: its name, the outcome, the wall time."""
-        minutes = (time.perf_counter() - self.start) / 60
-        prefix = "\n" if self.live and self.shown >= 0 else ""
-        self.stream.write(f"{prefix}{self.label}: {message} ({minutes:.1f} min)\n")
-        self.stream.flush()
 
 
 def _prepare_folder(run_dir: Path, digest: str) -> dict[str, Any] | None:
