@@ -3,9 +3,9 @@
 ``qlab-run``: the hydra app. One run, or a sweep with ``-m`` (``--multirun``)::
 
     qlab-run task=dock learner=qnet shaping=potential seed=3
-    qlab-run -m study=demo                  # the demo study's sweep, 2 local workers
+    qlab-run -m series=demo                  # the demo study's sweep, 2 local workers
 
-Runs land in ``<results_dir>/<study_name>/<run name>``, the run name made of the run's own
+Runs land in ``<results_dir>/<series_name>/<run name>``, the run name made of the run's own
 overrides (e.g. ``learner=qnet,seed=3,shaping=potential``), so re-running a sweep finds its
 runs again: finished ones are skipped, interrupted ones resume from their checkpoint.
 """
@@ -26,7 +26,7 @@ from qlab.config import CONFIG_DIR, register_configs, unknown_key_message
 
 MAX_NAME = 200
 #: overrides that choose where a run is stored or how it is executed, not what it computes
-NOT_IN_RUN_NAME = ("study", "study_name", "results_dir", "tensorboard", "torch_threads", "hydra")
+NOT_IN_RUN_NAME = ("series", "series_name", "results_dir", "tensorboard", "torch_threads", "hydra")
 
 
 def run_name(overrides: list[str]) -> str:
@@ -47,7 +47,7 @@ def _app(cfg: DictConfig) -> dict:
     from qlab.experiment import run_experiment
 
     hc = HydraConfig.get()
-    run_dir = Path(cfg.results_dir) / cfg.study_name / run_name(list(hc.overrides.task))
+    run_dir = Path(cfg.results_dir) / cfg.series_name / run_name(list(hc.overrides.task))
     try:
         return run_experiment(cfg, run_dir, bar=hc.mode != RunMode.MULTIRUN)
     except ValueError as err:  # a setting no schema could catch: report it plainly, no traceback

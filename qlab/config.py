@@ -75,7 +75,7 @@ class RunConfig:
     gamma: float = 0.99
     budget_steps: int = 50_000
     checkpoint_every_episodes: int = 25
-    study_name: str = "scratch"
+    series_name: str = "scratch"
     results_dir: str = "results"
     torch_threads: int = 1
     tensorboard: bool = True
@@ -185,7 +185,7 @@ def to_container(cfg: DictConfig) -> dict[str, Any]:
 
 
 #: config groups a command line can choose options of (``learner=qnet``)
-GROUPS = ("task", "shaping", "learner", "study")
+GROUPS = ("task", "shaping", "learner", "series")
 
 
 def unknown_key_message(overrides: list[str]) -> str | None:

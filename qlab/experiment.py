@@ -43,7 +43,7 @@ class LoopState:
 
 
 #: settings that say where a run is stored, not what it computes (left out of the config hash)
-STORAGE_KEYS = ("results_dir", "study_name")
+STORAGE_KEYS = ("results_dir", "series_name")
 
 
 def config_hash(cfg: DictConfig) -> str:

@@ -148,7 +148,7 @@ def test_invalid_setting_from_the_shell_fails_plainly(tmp_path):
 
 def test_config_hash_ignores_storage_but_not_settings():
     base = compose_run([])
-    assert config_hash(base) == config_hash(compose_run(["results_dir=elsewhere", "study_name=other"]))
+    assert config_hash(base) == config_hash(compose_run(["results_dir=elsewhere", "series_name=other"]))
     assert config_hash(base) != config_hash(compose_run(["seed=1"]))
 
 
@@ -156,7 +156,7 @@ def test_config_hash_ignores_storage_but_not_settings():
 
 
 def test_two_run_sweep_writes_folders_and_tensorboard_matches_csv(tmp_path):
-    shell(["-m", "seed=0,1", "study_name=pair", f"results_dir={tmp_path}", *TINY], tmp_path)
+    shell(["-m", "seed=0,1", "series_name=pair", f"results_dir={tmp_path}", *TINY], tmp_path)
     runs = sorted(p for p in (tmp_path / "pair").iterdir() if not p.name.startswith("."))
     assert sorted(next(o for o in p.name.split(",") if o.startswith("seed=")) for p in runs) == ["seed=0", "seed=1"]
     for run in runs:
@@ -173,7 +173,7 @@ def test_two_run_sweep_writes_folders_and_tensorboard_matches_csv(tmp_path):
 
 
 def test_rerun_skips_finished_and_reruns_changed(tmp_path):
-    args = ["study_name=again", f"results_dir={tmp_path}", *TINY]
+    args = ["series_name=again", f"results_dir={tmp_path}", *TINY]
     shell(args, tmp_path)
     run = next(p for p in (tmp_path / "again").iterdir() if not p.name.startswith("."))
     first = measured(run)
@@ -252,7 +252,7 @@ def test_killed_run_resumes_to_the_uninterrupted_result(tmp_path, learner, sig):
 
 
 def test_submitit_local_launcher_runs_a_two_job_sweep(tmp_path):
-    shell(["-m", "hydra/launcher=local_submitit", "seed=0,1", "study_name=sub", f"results_dir={tmp_path}", *TINY],
+    shell(["-m", "hydra/launcher=local_submitit", "seed=0,1", "series_name=sub", f"results_dir={tmp_path}", *TINY],
           tmp_path)
     runs = sorted(p for p in (tmp_path / "sub").iterdir() if not p.name.startswith("."))
     assert len(runs) == 2
@@ -263,7 +263,7 @@ def test_submitit_local_launcher_runs_a_two_job_sweep(tmp_path):
 def test_divergence_is_recorded_and_the_sweep_goes_on(tmp_path):
     shell(
         ["-m", "learner=qnet", "learner.loss=squared", "learner.grad_clip_norm=0", "learner.warmup_steps=50",
-         "learner.learning_rate=1e12,1e-3", "study_name=blowup", f"results_dir={tmp_path}", *TINY],
+         "learner.learning_rate=1e12,1e-3", "series_name=blowup", f"results_dir={tmp_path}", *TINY],
         tmp_path,
     )
     runs = {OmegaConf.load(p / "config.yaml").learner.learning_rate: p

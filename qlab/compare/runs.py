@@ -46,7 +46,7 @@ REPORT_MD = "report.md"
 #: longest task-setting folder name kept readable as it is; longer names are cut and get a digest
 MAX_SETTING_NAME = 100
 #: config keys that say where or how a run executes, not what it computes
-EXECUTION_KEYS = ("study_name", "results_dir", "tensorboard", "torch_threads", "checkpoint_every_episodes")
+EXECUTION_KEYS = ("series_name", "study_name", "results_dir", "tensorboard", "torch_threads", "checkpoint_every_episodes")
 #: arm of a run trained on the task's own reward with Q started at the potential (Wiewiora 2003)
 START_AT_POTENTIAL_ARM = "none + Q started at Phi"
 #: order of the known arms in tables and legends; other arms follow alphabetically
