@@ -34,6 +34,10 @@ _TAGS = (ARRAY_TAG, TENSOR_TAG)
 _TREE, _ARRAYS, _TENSORS = "tree.json", "arrays.npz", "tensors.pt"
 
 
+class CheckpointError(ValueError):
+    """A checkpoint on disk that cannot be read back; the message names the file."""
+
+
 def _encode(node: Any, arrays: dict[str, np.ndarray], tensors: dict[str, torch.Tensor], path: str) -> Any:
     """Replace arrays and tensors by markers, collecting them; check everything else is JSON-able."""
     if isinstance(node, dict):
@@ -153,11 +157,27 @@ def load_checkpoint(directory: str | os.PathLike) -> dict[str, Any]:
     folder = _readable(directory)
     if folder is None:
         raise FileNotFoundError(f"no checkpoint at {str(directory)!r}")
-    with open(folder / _TREE, encoding="utf-8") as f:
-        header = json.load(f)
-    if header.get("format") != FORMAT_VERSION:
-        raise ValueError(f"checkpoint format {header.get('format')!r} is not the supported {FORMAT_VERSION}")
-    tensors = torch.load(folder / _TENSORS, map_location="cpu", weights_only=True)
-    with np.load(folder / _ARRAYS, allow_pickle=False) as npz:
-        arrays = {key: npz[key] for key in npz.files}
-    return _decode(header["tree"], arrays, tensors)
+    try:
+        with open(folder / _TREE, encoding="utf-8") as f:
+            header = json.load(f)
+    except (OSError, ValueError) as err:
+        raise CheckpointError(f"{folder / _TREE}: unreadable ({type(err).__name__}: {err})") from None
+    if not isinstance(header, dict) or header.get("format") != FORMAT_VERSION:
+        raise CheckpointError(f"{folder / _TREE}: checkpoint format is not the supported {FORMAT_VERSION}")
+    try:
+        tensors = torch.load(folder / _TENSORS, map_location="cpu", weights_only=True)
+    except Exception as err:  # torch raises many kinds for a cut or foreign file; pickled objects are refused too
+        raise CheckpointError(f"{folder / _TENSORS}: unreadable ({type(err).__name__}: {_first_line(err)})") from None
+    try:
+        with np.load(folder / _ARRAYS, allow_pickle=False) as npz:
+            arrays = {key: npz[key] for key in npz.files}
+    except Exception as err:  # zipfile, OSError and ValueError (object arrays) among them
+        raise CheckpointError(f"{folder / _ARRAYS}: unreadable ({type(err).__name__}: {_first_line(err)})") from None
+    try:
+        return _decode(header["tree"], arrays, tensors)
+    except KeyError as err:
+        raise CheckpointError(f"{folder / _TREE}: refers to a missing array or tensor {err}") from None
+
+
+def _first_line(err: Exception) -> str:
+    return (str(err).splitlines() or [""])[0][:200]

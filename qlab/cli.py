@@ -3,17 +3,21 @@
 ``qlab-run``: the hydra app. One run, or a sweep with ``-m`` (``--multirun``)::
 
     qlab-run task=dock learner=qnet shaping=potential seed=3
-    qlab-run -m series=demo                  # the demo study's sweep, 2 local workers
+    qlab-run -m series=demo                 # the demo series' sweep, 2 local workers
 
 Runs land in ``<results_dir>/<series_name>/<run name>``, the run name made of the run's own
-overrides (e.g. ``learner=qnet,seed=3,shaping=potential``), so re-running a sweep finds its
-runs again: finished ones are skipped, interrupted ones resume from their checkpoint.
+overrides minus storage settings (e.g. ``learner=qnet,seed=3,shaping=potential``), so re-running
+a sweep finds its runs again (:mod:`qlab.runfolder` states what happens to each folder).
+
+Every mistake ends in one line naming the key, value or file, never a traceback. In a sweep a
+run that cannot start (a damaged or foreign folder, a refused resume) is reported and the sweep
+goes on; Ctrl-C (SIGINT) or SIGTERM stops the runs at their next step, keeping their last
+checkpoints, and exits 130 / 143.
 """
 
 from __future__ import annotations
 
-import hashlib
-import re
+import signal
 import sys
 from pathlib import Path
 
@@ -22,22 +26,9 @@ from hydra.core.hydra_config import HydraConfig
 from hydra.types import RunMode
 from omegaconf import DictConfig
 
-from qlab.config import CONFIG_DIR, register_configs, unknown_key_message
-
-MAX_NAME = 200
-#: overrides that choose where a run is stored or how it is executed, not what it computes
-NOT_IN_RUN_NAME = ("series", "series_name", "results_dir", "tensorboard", "torch_threads", "hydra")
-
-
-def run_name(overrides: list[str]) -> str:
-    """Folder name of a run: its sorted overrides, minus storage and execution settings."""
-    kept = sorted(o.lstrip("+~") for o in overrides if o.lstrip("+~").split("=")[0].split(".")[0]
-                  not in NOT_IN_RUN_NAME)
-    name = re.sub(r"[^A-Za-z0-9=,._+\-]", "_", ",".join(kept) or "defaults")
-    if len(name) > MAX_NAME:  # file systems cap names at 255 bytes: keep a readable head, add a digest
-        name = f"{name[: MAX_NAME - 17]}..{hashlib.sha256(name.encode()).hexdigest()[:15]}"
-    return name
-
+from qlab.config import CONFIG_DIR, override_problem, register_configs
+from qlab.runfolder import RunFolderError
+from qlab.runspec import require_name, run_name
 
 register_configs()
 
@@ -47,16 +38,27 @@ def _app(cfg: DictConfig) -> dict:
     from qlab.experiment import run_experiment
 
     hc = HydraConfig.get()
-    run_dir = Path(cfg.results_dir) / cfg.series_name / run_name(list(hc.overrides.task))
+    sweep = hc.mode == RunMode.MULTIRUN
     try:
-        return run_experiment(cfg, run_dir, bar=hc.mode != RunMode.MULTIRUN)
-    except ValueError as err:  # a setting no schema could catch: report it plainly, no traceback
-        raise SystemExit(f"qlab-run: invalid setting: {err}") from None
+        series = require_name("series_name", cfg.series_name)
+        run_dir = Path(cfg.results_dir) / series / run_name(list(hc.overrides.task))
+        return run_experiment(cfg, run_dir, bar=not sweep)
+    except ValueError as err:  # a setting no schema could catch, or a folder that may not be written
+        message = str(err) if isinstance(err, RunFolderError) else f"invalid setting: {err}"
+        if not sweep:
+            raise SystemExit(f"qlab-run: {message}") from None
+        print(f"qlab-run: run not started: {message}", file=sys.stderr)
+        return {"status": "refused", "error": message}
 
 
 def run() -> None:
-    """``qlab-run``: train (and sweep) from the shell; an unknown key fails at once, listing the valid ones."""
-    problem = unknown_key_message(sys.argv[1:])
+    """``qlab-run``: train (and sweep) from the shell; a bad key or option fails at once, naming the valid ones."""
+    problem = override_problem(sys.argv[1:])
     if problem is not None:
         raise SystemExit(f"qlab-run: {problem}")
-    _app()
+    try:
+        _app()
+    except KeyboardInterrupt:  # Ctrl-C while a sweep launcher waits for its workers
+        print("qlab-run: interrupted; runs keep their last checkpoints: run the same command again to resume",
+              file=sys.stderr)
+        raise SystemExit(128 + signal.SIGINT) from None

@@ -23,16 +23,12 @@ from omegaconf import MISSING, DictConfig, OmegaConf
 
 from qlab.learners import LEARNERS, learner_config_class
 from qlab.shaping import SHAPING_VARIANTS
+from qlab.tasks import TASKS, LearnerSizes
+
+#: default of ``max_learner_mib``; also the limit for runs recorded before the setting existed
+DEFAULT_MAX_LEARNER_MIB = 2048
 
 CONFIG_DIR = Path(__file__).resolve().parent.parent / "configs"
-
-#: config-group option -> (gymnasium id, "module:Class" of the constructor whose arguments are the settings)
-TASKS = {
-    "dock": ("qlab/Dock-v0", "qlab.tasks.dock:Dock"),
-    "kiln": ("qlab/Kiln-v0", "qlab.tasks.kiln:Kiln"),
-    "crane": ("qlab/Crane-v0", "qlab.tasks.crane:Crane"),
-    "linear_quadratic": ("qlab/LinearQuadratic-v0", "qlab.tasks.linear_quadratic:LinearQuadratic"),
-}
 
 
 @dataclass
@@ -61,6 +57,7 @@ class GymTaskConfig:
 
     id: str = "CartPole-v1"
     params: dict[str, Any] = field(default_factory=dict)
+    learner_sizes: LearnerSizes = field(default_factory=lambda: LearnerSizes([10], [8], 8))
 
 
 @dataclass
@@ -79,6 +76,8 @@ class RunConfig:
     results_dir: str = "results"
     torch_threads: int = 1
     tensorboard: bool = True
+    # A table, feature map or replay memory that would need more than this is refused before allocation.
+    max_learner_mib: int = DEFAULT_MAX_LEARNER_MIB
 
 
 def _field_type(annotation: Any) -> Any:
@@ -135,10 +134,11 @@ def register_configs() -> ConfigStore:
     """Register every schema with hydra's ConfigStore (idempotent)."""
     cs = ConfigStore.instance()
     cs.store(name="schema_run", node=RunConfig)
-    for option, (env_id, target) in TASKS.items():
-        head = [("id", str, field(default=env_id))]
-        cs.store(group="schema/task", name=option, node=signature_schema(f"{option}_task", target, head))
-    cs.store(group="schema/task", name="gym", node=GymTaskConfig)
+    for option, entry in TASKS.items():
+        head = [("id", str, field(default=entry.env_id)),
+                ("learner_sizes", LearnerSizes, field(default_factory=lambda e=entry: dataclasses.replace(e.sizes)))]
+        cs.store(group="task", name=option, node=signature_schema(f"{option}_task", entry.target, head))
+    cs.store(group="task", name="gym", node=GymTaskConfig)
     for kind in LEARNERS:
         cs.store(group="schema/learner", name=kind, node=learner_schema(kind))
     return cs
@@ -152,6 +152,7 @@ def validate(cfg: DictConfig) -> None:
         "evaluation.episodes": cfg.evaluation.episodes,
         "checkpoint_every_episodes": cfg.checkpoint_every_episodes,
         "torch_threads": cfg.torch_threads,
+        "max_learner_mib": cfg.max_learner_mib,
     }
     for key, value in positive.items():
         if value <= 0:
@@ -188,38 +189,80 @@ def to_container(cfg: DictConfig) -> dict[str, Any]:
 GROUPS = ("task", "shaping", "learner", "series")
 
 
-def unknown_key_message(overrides: list[str]) -> str | None:
-    """A message naming the first override whose key the composed config lacks, with the valid keys there.
+def group_options(group: str) -> list[str]:
+    """The options of a config group: its ``configs/<group>/*.yaml`` files and its registered schemas."""
+    register_configs()
+    files = {p.stem for p in (CONFIG_DIR / group).glob("*.yaml")}
+    try:
+        stored = {name.removesuffix(".yaml") for name in ConfigStore.instance().list(group)}
+    except OSError:  # no schema registered as an option of this group
+        stored = set()
+    return sorted(files | stored)
 
-    Each group option named on the command line (``learner=tabular,qnet`` names two) is composed
-    once, so a key is accepted if some chosen option has it. ``+``/``~`` overrides, ``hydra.*``
-    keys and group choices are left to hydra.
+
+def _chosen(override: Any, options: list[str]) -> list[str]:
+    """The options an override of a group names (a sweep, ``glob(...)`` or one value)."""
+    from hydra.core.override_parser.types import Glob
+
+    value = override.value()
+    if isinstance(value, Glob):
+        return value.filter(options)
+    if override.is_sweep_override():
+        return list(override.sweep_string_iterator())
+    return [str(value)]
+
+
+def override_problem(argv: list[str]) -> str | None:
+    """One line naming the first bad override of a command line (unknown key or group option), else None.
+
+    Overrides are read by hydra's own parser, so its sweep syntax (``a,b``, ``range(...)``,
+    ``choice(...)``, ``glob(...)``) is understood. A key is accepted if some chosen option of each
+    group has it; ``+key`` and ``++key`` must name a key a schema has, or one inside a free-form
+    node (``task.params``). Deletions (``~key``) and ``hydra`` settings are left to hydra.
     """
     from hydra import compose, initialize_config_dir
+    from hydra._internal.utils import get_args_parser
+    from hydra.core.override_parser.overrides_parser import OverridesParser
+    from hydra.errors import HydraException
 
-    register_configs()
-    choices = {g: [] for g in GROUPS}
+    try:
+        parsed = OverridesParser.create().parse_overrides(get_args_parser().parse_args(argv).overrides)
+    except HydraException as err:
+        return f"cannot read the command line: {str(err).splitlines()[0]}"
+    choices: dict[str, list[str]] = {}
     keys = []
-    for item in overrides:
-        if item.startswith(("-", "+", "~")) or "=" not in item:
+    for o in parsed:
+        name = o.key_or_group
+        if o.is_delete() or name.startswith("hydra"):
             continue
-        key, value = item.split("=", 1)
-        if key in choices:
-            choices[key] = [v for v in value.split(",") if v]
-        elif not key.startswith("hydra") and "/" not in key:
-            keys.append(key)
+        if name in GROUPS:
+            options = group_options(name)
+            chosen = _chosen(o, options)
+            bad = [c for c in chosen if c not in options and c != "null"]
+            if bad or not chosen:
+                named = bad[0] if bad else o.input_line.split("=", 1)[-1]
+                return f"{name}={named}: no such option; choose from {options}"
+            choices[name] = [c for c in chosen if c != "null"]
+        elif "/" not in name:
+            keys.append(name)
     if not keys:
         return None
     first = [f"{g}={opts[0]}" for g, opts in choices.items() if opts]
     variants = [first] + [[f"{g}={o}" if f.startswith(f"{g}=") else f for f in first]
                           for g, opts in choices.items() for o in opts[1:]]
-    with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
-        configs = [compose(config_name="config", overrides=v) for v in variants]
+    register_configs()
+    try:
+        with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
+            configs = [compose(config_name="config", overrides=v) for v in variants]
+    except HydraException as err:
+        return str(err).splitlines()[0]
     for key in keys:
         parent, _, leaf = key.rpartition(".")
         nodes = [cfg if not parent else OmegaConf.select(cfg, parent) for cfg in configs]
         nodes = [n for n in nodes if isinstance(n, DictConfig)]
-        if nodes and not any(leaf in n for n in nodes):
+        if any(OmegaConf.get_type(n) is dict for n in nodes):  # a free-form node: any key may be added
+            continue
+        if not any(leaf in n for n in nodes):
             valid = sorted({k for n in nodes for k in n})
             where = f"'{parent}'" if parent else "the run config"
             return f"unknown key '{key}': {where} has {valid}"

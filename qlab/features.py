@@ -18,6 +18,7 @@ observations outside the bounds are clipped to them.
 
 from __future__ import annotations
 
+import math
 from dataclasses import dataclass, field
 
 import numpy as np
@@ -284,3 +285,19 @@ def build_features(config: FeatureConfig, space: spaces.Space) -> FeatureMap:
     if config.features == "rbf":
         return GaussianRBF(low, high, config.bins, config.rbf_width)
     raise ValueError(f"features must be one of {list(FEATURE_KINDS)}, got {config.features!r}")
+
+
+def feature_count(config: FeatureConfig, space: spaces.Space) -> tuple[int, str]:
+    """How many features ``build_features(config, space)`` would make, and the settings that decide it.
+
+    Computed from the settings alone, before anything is allocated (exact Python integers, so
+    sizes beyond any machine are reported, not overflowed).
+    """
+    dim = observation_dim(space)
+    if config.features == "quadratic":
+        return dim * (dim + 1) // 2 + dim + 1, "features=quadratic"
+    check_bins("bins", config.bins)
+    bins = [int(b) for b in per_dim("bins", config.bins, dim)]
+    if config.features == "tiles":
+        return int(config.n_tilings) * math.prod(b + 1 for b in bins), "bins, n_tilings"
+    return math.prod(bins), "bins"

@@ -16,6 +16,7 @@ the task's own reward), ``learn/`` (learning internals) and ``speed/``.
 from __future__ import annotations
 
 import csv
+import hashlib
 import io
 import json
 import os
@@ -49,6 +50,11 @@ def atomic_write_text(path: Path, text: str) -> None:
 def atomic_write_json(path: Path, data: Any) -> None:
     """Atomically write ``data`` as indented JSON."""
     atomic_write_text(path, json.dumps(data, indent=2, sort_keys=True) + "\n")
+
+
+def file_digest(path: Path) -> str:
+    """SHA-256 of a file's bytes (ties a run's metrics table to its summary)."""
+    return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
 def read_metrics(run_dir: Path) -> list[tuple[int, str, float]]:

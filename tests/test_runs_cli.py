@@ -8,6 +8,7 @@ from __future__ import annotations
 
 import csv
 import json
+import signal
 import subprocess
 import sys
 import textwrap
@@ -20,8 +21,8 @@ from hydra.errors import ConfigCompositionException
 from omegaconf import OmegaConf
 from omegaconf.errors import ConfigAttributeError, ValidationError
 
-from qlab.config import CONFIG_DIR, register_configs, unknown_key_message, validate
-from qlab.experiment import build_run, config_hash
+from qlab.config import CONFIG_DIR, override_problem, register_configs, validate
+from qlab.runspec import build_run, config_tree, run_digest
 from qlab.recording import read_metrics
 
 QLAB_RUN = str(Path(sys.executable).parent / "qlab-run")
@@ -99,13 +100,13 @@ def test_unknown_key_names_the_key():
 
 
 def test_unknown_key_lists_the_valid_keys_of_its_node():
-    message = unknown_key_message(["learner=qnet", "learner.hidden_size=[8]"])
+    message = override_problem(["learner=qnet", "learner.hidden_size=[8]"])
     assert message is not None and "unknown key 'learner.hidden_size'" in message
     assert "'hidden_sizes'" in message and "'learning_rate'" in message
-    message = unknown_key_message(["task=crane", "task.mass_kgs=5"])
+    message = override_problem(["task=crane", "task.mass_kgs=5"])
     assert "'task' has [" in message and "'mass_trolley_kg'" in message and "'mass_load_kg'" in message
-    assert unknown_key_message(["learner=tabular,qnet", "learner.hidden_sizes=[8]"]) is None  # qnet has it
-    assert unknown_key_message(["-m", "seed=0,1", "learner.epsilon.start=0.5"]) is None
+    assert override_problem(["learner=tabular,qnet", "learner.hidden_sizes=[8]"]) is None  # qnet has it
+    assert override_problem(["-m", "seed=0,1", "learner.epsilon.start=0.5"]) is None
 
 
 def test_unknown_key_from_the_shell_fails_before_any_work(tmp_path):
@@ -148,8 +149,9 @@ def test_invalid_setting_from_the_shell_fails_plainly(tmp_path):
 
 def test_config_hash_ignores_storage_but_not_settings():
     base = compose_run([])
-    assert config_hash(base) == config_hash(compose_run(["results_dir=elsewhere", "series_name=other"]))
-    assert config_hash(base) != config_hash(compose_run(["seed=1"]))
+    assert run_digest(config_tree(base)) == run_digest(config_tree(compose_run(["results_dir=elsewhere",
+                                                                                "series_name=other"])))
+    assert run_digest(config_tree(base)) != run_digest(config_tree(compose_run(["seed=1"])))
 
 
 # --- sweeps and recording ------------------------------------------------------------------
@@ -225,21 +227,27 @@ KILLER = textwrap.dedent(
 )
 
 
-def run_script(run_dir: Path, n_kill: int, sig: str, overrides: list[str]) -> int:
+def run_script(run_dir: Path, n_kill: int, sig: str, overrides: list[str]) -> subprocess.CompletedProcess:
     args = [sys.executable, "-c", KILLER, str(run_dir), str(n_kill), sig, *overrides]
-    return subprocess.run(args, capture_output=True, text=True, timeout=600).returncode
+    return subprocess.run(args, capture_output=True, text=True, timeout=600)
 
 
-@pytest.mark.parametrize(("learner", "sig"), [("tabular", "SIGKILL"), ("qnet", "SIGKILL"), ("tabular", "SIGINT")])
+@pytest.mark.parametrize(("learner", "sig"), [("tabular", "SIGKILL"), ("qnet", "SIGKILL"), ("tabular", "SIGINT"),
+                                              ("qnet", "SIGTERM")])
 def test_killed_run_resumes_to_the_uninterrupted_result(tmp_path, learner, sig):
     overrides = [f"learner={learner}", "learner.warmup_steps=100" if learner == "qnet" else "seed=0", *TINY]
     whole, killed = tmp_path / "whole", tmp_path / "killed"
-    assert run_script(whole, 0, sig, overrides) == 0
-    assert run_script(killed, 3, sig, overrides) != 0  # stopped a little after its 3rd checkpoint
+    assert run_script(whole, 0, sig, overrides).returncode == 0
+    stopped = run_script(killed, 3, sig, overrides)  # signalled a little after its 3rd checkpoint
     assert not (killed / "FINISHED").exists()
-    on_disk = tensorboard_scalars(killed)
-    assert max(s for s, _, _ in on_disk) > max(s for s, _, _ in read_metrics(killed))  # events past the checkpoint
-    assert run_script(killed, 0, sig, overrides) == 0  # the same command again resumes and finishes
+    if sig == "SIGKILL":
+        assert stopped.returncode == -signal.SIGKILL
+        on_disk = tensorboard_scalars(killed)
+        assert max(s for s, _, _ in on_disk) > max(s for s, _, _ in read_metrics(killed))  # events past the checkpoint
+    else:  # a clean stop: 128 + signal number, one line, no traceback
+        assert stopped.returncode == 128 + getattr(signal, sig)
+        assert "Traceback" not in stopped.stderr and f"stopped by {sig}" in stopped.stderr
+    assert run_script(killed, 0, sig, overrides).returncode == 0  # the same command again resumes and finishes
     rows = read_metrics(killed)
     assert len(rows) == len(set((s, t) for s, t, _ in rows))  # nothing recorded twice
     assert measured(killed) == measured(whole)  # nothing lost, and the resumed run repeats the uninterrupted one

@@ -16,16 +16,16 @@ from typing import Any
 
 import numpy as np
 
-from qlab.checkpoint import has_checkpoint, load_checkpoint
+from qlab.checkpoint import has_checkpoint
 from qlab.compare import diagnostics, figures
 from qlab.compare.audit import audit_markdown, shaping_audit
+from qlab.compare.markup import md_literal
 from qlab.compare.measures import iqm_estimate
 from qlab.compare.runs import Run, Study
 from qlab.compare.selection import Selection
 from qlab.compare.stats import iqm
-from qlab.config import to_container
-from qlab.experiment import CHECKPOINT, make_env, make_task
-from qlab.learners import Learner, build_learner
+from qlab.learners import Learner
+from qlab.runspec import CHECKPOINT, make_task, restore_learner
 
 DOCK_ID = "qlab/Dock-v0"
 #: full-batch Adam steps of a Q-network's best fit of Q* (half the diagnostics default, to keep reports quick)
@@ -42,13 +42,7 @@ def has_grid_reference(run: Run) -> bool:
 
 def restore(run: Run) -> tuple[Learner, Any]:
     """The run's final learner (from its checkpoint) and its unwrapped task."""
-    cfg = run.config
-    env = make_env(cfg.task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
-    settings = to_container(cfg.learner)
-    kind = settings.pop("kind")
-    learner = build_learner(kind, settings, env.observation_space, env.action_space, int(cfg.seed))
-    learner.load_state_dict(load_checkpoint(run.path / CHECKPOINT)["learner"])
-    return learner, env.unwrapped
+    return restore_learner(run.path, run.config)
 
 
 def _task_key(run: Run) -> tuple:
@@ -72,7 +66,7 @@ def _restored(runs: list[Run], label: str, notes: list[str]) -> list[tuple[Run, 
         try:
             out.append((run, *restore(run)))
         except ValueError as err:
-            notes.append(f"{label}: run {run.name} could not be restored ({err}).")
+            notes.append(f"{label}: run {md_literal(run.name)} could not be restored ({md_literal(err)}).")
     return out
 
 
@@ -114,10 +108,11 @@ def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[s
         maps = []
         for arm in sel.arms:
             runs = [r for r in sel.runs[arm] if has_grid_reference(r)]
+            shown_kind, shown_arm = md_literal(learner_kind), md_literal(arm)
             if len(_usable(runs)) < len(runs):
-                notes.append(f"{learner_kind} / {arm}: {len(runs) - len(_usable(runs))} failed run(s) left out of "
-                             "the errors.")
-            restored = _restored(runs, f"{learner_kind} / {arm}", notes)
+                notes.append(f"{shown_kind} / {shown_arm}: {len(runs) - len(_usable(runs))} failed run(s) left out "
+                             "of the errors.")
+            restored = _restored(runs, f"{shown_kind} / {shown_arm}", notes)
             if not restored:
                 continue
             usable = [run for run, _, _ in restored]
@@ -133,7 +128,7 @@ def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[s
                 losses.append(diagnostics.policy_loss(learner, ref))
                 if run is shown:
                     maps.append((arm, run.name, diagnostics.value_maps(learner, ref)))
-            lines.append(f"| {learner_kind} | {arm} | {len(usable)} | {_cell(totals)} | {approx:.3g} | "
+            lines.append(f"| {shown_kind} | {shown_arm} | {len(usable)} | {_cell(totals)} | {approx:.3g} | "
                          f"{_cell(remainders)} | {_cell(losses)} |")
         if maps:
             fig = figures.value_map_figure(learner_kind, maps)
@@ -177,7 +172,8 @@ def lq_lines(selections: dict[str, Selection], out: Path) -> list[str]:
         for arm in sel.arms:
             rows, splits, losses = [], [], []
             runs = [r for r in sel.runs[arm] if r.task_id == LQ_ID]
-            restored = _restored(runs, f"{learner_kind} / {arm}", skipped)
+            shown_kind, shown_arm = md_literal(learner_kind), md_literal(arm)
+            restored = _restored(runs, f"{shown_kind} / {shown_arm}", skipped)
             shown = _representative([run for run, _, _ in restored]) if restored else None
             for run, learner, task in restored:
                 gamma = float(run.flat["gamma"])
@@ -190,16 +186,17 @@ def lq_lines(selections: dict[str, Selection], out: Path) -> list[str]:
                     splits.append(diagnostics.lq_error_split(learner, ref))
                     losses.append(diagnostics.lq_policy_loss(learner, ref))
                 except ValueError as err:
-                    skipped.append(f"{learner_kind} / {arm}: {err}")
+                    skipped.append(f"{shown_kind} / {shown_arm}: {md_literal(err)}")
                     break
                 if run is shown and task.A.shape[0] == 2:
                     maps.append((arm, run.name, diagnostics.lq_value_maps(learner, ref, labels=_lq_labels(run))))
                 elif run is shown:
-                    skipped.append(f"maps of {learner_kind} / {arm}: the state is {task.A.shape[0]}-D (maps need 2-D)")
+                    skipped.append(f"maps of {shown_kind} / {shown_arm}: the state is {task.A.shape[0]}-D "
+                                   "(maps need 2-D)")
             if rows and len(splits) == len(rows):
                 ratios = [d.cost_ratio for d in rows]
                 lines.append(
-                    f"| {learner_kind} | {arm} | {len(rows)} | {iqm([d.gain_error for d in rows]):.3g} | "
+                    f"| {shown_kind} | {shown_arm} | {len(rows)} | {iqm([d.gain_error for d in rows]):.3g} | "
                     f"{iqm([d.q_matrix_error for d in rows]):.3g} | {_finite_iqm(ratios)} | "
                     f"{int((~np.isfinite(ratios)).sum())} | {iqm([e.total for e in splits]):.3g} | "
                     f"{iqm([e.approximation for e in splits]):.2g} | {iqm([e.remainder for e in splits]):.3g} | "
@@ -231,7 +228,7 @@ def audit_lines(study: Study, grid: int) -> list[str]:
             warnings.simplefilter("ignore", UserWarning)  # the trap warning is in the markdown
             report = shaping_audit(task, float(runs[0].flat["gamma"]), grid, grid, scale)
         if len(settings) > 1:
-            lines.append(f"Task setting of run {runs[0].name}:")
+            lines.append(f"Task setting of run {md_literal(runs[0].name)}:")
             lines.append("")
         lines += ["What the optimal policy of each shaping variant is worth on the task's own reward (exact, on the "
                   "grid model with the runs' task parameters).", "", audit_markdown(report).rstrip(), ""]
@@ -251,7 +248,7 @@ def diagnostics_lines(study: Study, selections: dict[str, Selection], grid: int,
         lines += ["### Dock: learned Q against the exact grid reference", "", *dock_lines(selections, grid, out)]
     if any(r.task_id == LQ_ID for r in runs):
         lines += ["### Linear-quadratic: learned Q against the closed form", "", *lq_lines(selections, out)]
-    others = sorted({r.task_id for r in runs if not has_grid_reference(r) and r.task_id != LQ_ID})
+    others = sorted({md_literal(r.task_id) for r in runs if not has_grid_reference(r) and r.task_id != LQ_ID})
     if others:
         lines += [f"No exact answer for {', '.join(others)} (or Dock with noise or continuous thrust): "
                   "diagnostics skipped for those runs.", ""]

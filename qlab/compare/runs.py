@@ -32,6 +32,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from qlab.config import flatten as flatten_config
 from qlab.recording import MARKER, SUMMARY, read_metrics
+from qlab.runspec import is_storage_key
 
 #: the scores a failed run loses from its failure step on (see the module docstring)
 SCORES = ("success_rate", "discounted_return")
@@ -45,8 +46,8 @@ TASK_PREFIX = "task."
 REPORT_MD = "report.md"
 #: longest task-setting folder name kept readable as it is; longer names are cut and get a digest
 MAX_SETTING_NAME = 100
-#: config keys that say where or how a run executes, not what it computes
-EXECUTION_KEYS = ("series_name", "study_name", "results_dir", "tensorboard", "torch_threads", "checkpoint_every_episodes")
+#: task keys that size the learner (the learner's own keys carry their effect), not part of the task setting
+LEARNER_SIZES_PREFIX = "task.learner_sizes."
 #: arm of a run trained on the task's own reward with Q started at the potential (Wiewiora 2003)
 START_AT_POTENTIAL_ARM = "none + Q started at Phi"
 #: order of the known arms in tables and legends; other arms follow alphabetically
@@ -125,11 +126,12 @@ class Run:
     def setting(self) -> dict[str, Any]:
         """Config keys that make up its hyperparameter setting (all but seed, shaping, task and execution keys)."""
         return {k: v for k, v in self.flat.items() if k != "seed" and not k.startswith(("shaping.", TASK_PREFIX))
-                and k.split(".")[0] not in EXECUTION_KEYS}
+                and not is_storage_key(k)}
 
     def task_setting(self) -> tuple[tuple[str, Any], ...]:
         """The ``task.*`` keys and values of its config, sorted by key (hashable)."""
-        return tuple(sorted((k, v) for k, v in self.flat.items() if k.startswith(TASK_PREFIX)))
+        return tuple(sorted((k, v) for k, v in self.flat.items()
+                            if k.startswith(TASK_PREFIX) and not k.startswith(LEARNER_SIZES_PREFIX)))
 
 
 @dataclass

@@ -6,16 +6,19 @@ Q(s, a)``; the bootstrap term is dropped when the step *terminated* and kept whe
 *truncated* by a time cap. ``n(s) = |phi(s)|^2`` with ``normalise_step`` (normalised LMS: for
 tile coding this is the usual ``alpha / n_tilings``), else 1.
 
-Batches: all TD errors use the weights from before the batch; each weight moves by its step size
-times the average of ``delta * phi_i / n`` over the transitions of the batch in which feature
-``i`` is active for the action taken (a batch of one is the plain update).
+Batches (e.g. one step of ``B`` task copies): all TD errors use the weights from before the
+batch; each weight moves by its step size times the average of ``delta * phi_i / n`` over the
+transitions of the batch in which feature ``i`` is active for the action taken (a batch of one is
+the plain update). So a batch equals ``B`` one-at-a-time updates only when no weight is touched
+twice and no TD error reads a weight the batch changes; otherwise it is the averaged update.
 
 Step sizes: ``step_size_count="step"`` evaluates the schedule at the number of transitions
 learned so far; ``"visits"`` at the number of earlier updates of that weight with its feature
 active (for one-hot features: the visit count of the state-action pair, so the ``polynomial``
-schedule gives ``1/n`` or ``1/n^w`` steps). Exploration is epsilon-greedy with epsilon scheduled
-by the number of ``act`` calls; greedy ties are broken at random in ``act`` and by the lowest
-index in ``greedy``.
+schedule gives ``1/n`` or ``1/n^w`` steps; a batch reads the count from before it). Exploration is
+epsilon-greedy, ``act`` taking a batch of observations, with epsilon scheduled by the number of
+observations acted on (``B`` per call); greedy ties are broken at random in ``act`` and by the
+lowest index in ``greedy``.
 
 :meth:`LinearQ.initialise_from` starts Q at a given function of the state, e.g. the task's
 potential Phi: shaping with Phi and starting Q at Phi are the same for Q-learning on a table
@@ -35,7 +38,7 @@ from gymnasium import spaces
 from scipy.sparse.linalg import lsmr
 from scipy.stats import qmc
 
-from qlab.features import FeatureConfig, FeatureMap, GaussianRBF, GridBins, TileCoder, build_features
+from qlab.features import FeatureConfig, FeatureMap, GaussianRBF, GridBins, TileCoder, build_features, feature_count
 from qlab.learners.protocol import Transitions
 from qlab.learners.schedules import ScheduleConfig, check_epsilon
 
@@ -95,12 +98,28 @@ def action_count(space: spaces.Space, learner: str) -> int:
     return int(space.n)
 
 
-def epsilon_greedy(q: np.ndarray, epsilon: float, rng: np.random.Generator) -> int:
-    """A uniformly random action with probability ``epsilon``, else a greedy one (ties at random)."""
-    if rng.random() < epsilon:
-        return int(rng.integers(q.size))
-    best = np.flatnonzero(q == q.max())
-    return int(best[rng.integers(best.size)]) if best.size > 1 else int(best[0])
+def action_total(space: spaces.Space) -> int:
+    """Number of actions of a ``Discrete`` space, 1 for any other (memory estimates only)."""
+    return int(space.n) if isinstance(space, spaces.Discrete) else 1
+
+
+def epsilon_greedy(q: np.ndarray, epsilon: np.ndarray | float, rng: np.random.Generator) -> np.ndarray:
+    """Per row of ``q`` ``(B, n_actions)``: a uniformly random action with probability ``epsilon`` (per row
+    or shared), else a greedy one, ties broken at random; ``(B,)`` int64.
+
+    Draws from ``rng``: ``B`` uniforms, one action index per exploring row, then one tie pick per
+    greedy row with tied maxima (for ``B = 1`` the draws of the one-row rule, in its order).
+    """
+    explore = rng.random(q.shape[0]) < epsilon
+    action = q.argmax(axis=1)
+    action[explore] = rng.integers(q.shape[1], size=int(explore.sum()))
+    best = q == q.max(axis=1, keepdims=True)
+    ties = best.sum(axis=1)
+    tied = np.flatnonzero(~explore & (ties > 1))
+    if tied.size:
+        pick = rng.integers(ties[tied])  # the pick-th tied maximum of each row
+        action[tied] = (np.cumsum(best[tied], axis=1) > pick[:, None]).argmax(axis=1)
+    return action
 
 
 def rng_state(rng: np.random.Generator) -> dict[str, Any]:
@@ -203,6 +222,13 @@ class LinearQ:
         self._setup(build_features(config, observation_space), action_space, config, seed, config.normalise_step)
         self.observation_space = observation_space
 
+    @classmethod
+    def memory_bytes(cls, config: LinearConfig, observation_space: spaces.Space,
+                     action_space: spaces.Space) -> tuple[int, str]:
+        """Bytes of the weights and visit counts (8 + 8 per feature and action), and the settings that decide it."""
+        n_features, settings = feature_count(config, observation_space)
+        return 16 * n_features * action_total(action_space), settings
+
     def _setup(
         self,
         features: FeatureMap,
@@ -240,11 +266,12 @@ class LinearQ:
         """Greedy actions ``(B,)`` int64 (ties: lowest index)."""
         return self.q_values(obs).argmax(axis=1)
 
-    def act(self, obs: np.ndarray) -> int:
-        """Epsilon-greedy action for one observation ``(obs_dim,)``."""
-        q = self.q_values(np.asarray(obs)[None])[0]
-        epsilon = float(self.epsilon(self.act_count))
-        self.act_count += 1
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        """Epsilon-greedy actions ``(B,)`` int64 for a batch ``(B, obs_dim)``; row ``j`` explores with
+        epsilon at ``act_count + j`` (the schedule counts transitions, ``B`` per call)."""
+        q = self.q_values(obs)
+        epsilon = np.asarray(self.epsilon(self.act_count + np.arange(q.shape[0])))
+        self.act_count += q.shape[0]
         return epsilon_greedy(q, epsilon, self.rng)
 
     def initialise_from(self, values: Callable[[np.ndarray], np.ndarray]) -> None:

@@ -1,7 +1,10 @@
 """LSTD-Q policy iteration on stored transitions (Lagoudakis & Parr 2003).
 
 ``learn`` stores transitions (the most recent ``max_samples``); every ``refit_every`` stored
-transitions the learner runs up to ``n_iterations`` rounds of policy iteration over all of them:
+transitions the learner runs up to ``n_iterations`` rounds of policy iteration over all of them.
+A batch (e.g. one step of ``B`` task copies) is stored exactly as its ``B`` transitions one at a
+time; the refit then runs once at the end of a batch in which the count passed a multiple of
+``refit_every`` (so with ``B > 1`` it may include up to ``B - 1`` transitions more):
 
 * evaluation (LSTD-Q): ``w = (Phi'(Phi - gamma Phi_pi') / N + ridge I)^-1 Phi' r / N``, where row
   ``i`` of ``Phi`` is ``phi(s_i, a_i)`` and of ``Phi_pi'`` is ``phi(s'_i, pi(s'_i))``, zero when the
@@ -21,6 +24,8 @@ Features ``phi(s, a)``:
   the policy is ``u = -K0 x`` with ``K0 = initial_gain`` (zero if empty). ``act`` adds Gaussian
   noise of standard deviation ``exploration_std`` to the greedy control (Bradtke, Ydstie & Barto
   1994).
+
+``act`` takes a batch of observations; epsilon follows the number of observations acted on.
 """
 
 from __future__ import annotations
@@ -31,8 +36,16 @@ from typing import Any
 import numpy as np
 from gymnasium import spaces
 
-from qlab.features import FeatureConfig, FeatureMap, QuadraticFeatures, build_features, observation_dim, rows_to_csr
-from qlab.learners.linear import check_gamma, epsilon_greedy, restore_array, rng_state
+from qlab.features import (
+    FeatureConfig,
+    FeatureMap,
+    QuadraticFeatures,
+    build_features,
+    feature_count,
+    observation_dim,
+    rows_to_csr,
+)
+from qlab.learners.linear import action_total, check_gamma, epsilon_greedy, restore_array, rng_state
 from qlab.learners.protocol import Transitions
 from qlab.learners.schedules import ScheduleConfig, check_epsilon
 
@@ -203,6 +216,15 @@ class LSTDQ:
         self.learn_count = 0
         self.rng = np.random.default_rng(seed)
 
+    @classmethod
+    def memory_bytes(cls, config: LSTDQConfig, observation_space: spaces.Space,
+                     action_space: spaces.Space) -> tuple[int, str]:
+        """Bytes of the LSTD matrix (k x k float64, k = features x actions) and the stored samples."""
+        n_features, settings = feature_count(config, observation_space)
+        k = n_features * action_total(action_space)
+        samples = int(config.max_samples) * (16 * observation_dim(observation_space) + 32)
+        return 8 * k * k + samples, f"{settings}, max_samples"
+
     # --- acting -----------------------------------------------------------------------------
 
     def q_values(self, obs: np.ndarray) -> np.ndarray:
@@ -224,16 +246,18 @@ class LSTDQ:
         """Greedy actions: ``(B,)`` int64 indices or ``(B, act_dim)`` controls."""
         return self.head.greedy(obs)
 
-    def act(self, obs: np.ndarray) -> Any:
-        """Exploring action for one observation: epsilon-greedy index, or greedy control plus Gaussian noise."""
-        obs = np.asarray(obs)[None]
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        """Exploring actions for a batch ``(B, obs_dim)``: epsilon-greedy indices ``(B,)`` int64 (row ``j`` at
+        epsilon of ``act_count + j``), or greedy controls plus Gaussian noise ``(B, act_dim)`` float32."""
+        obs = np.asarray(obs)
+        b = obs.shape[0]
         if isinstance(self.head, _QuadraticForm):
-            u = self.head.greedy(obs)[0] + self.exploration_std * self.rng.standard_normal(self.head.action_dim)
-            self.act_count += 1
+            u = self.head.greedy(obs) + self.exploration_std * self.rng.standard_normal((b, self.head.action_dim))
+            self.act_count += b
             return np.clip(u, self.head.low, self.head.high).astype(np.float32)
-        epsilon = float(self.epsilon(self.act_count))
-        self.act_count += 1
-        return epsilon_greedy(self.head.q_values(obs)[0], epsilon, self.rng)
+        epsilon = np.asarray(self.epsilon(self.act_count + np.arange(b)))
+        self.act_count += b
+        return epsilon_greedy(self.head.q_values(obs), epsilon, self.rng)
 
     # --- learning ---------------------------------------------------------------------------
 

@@ -2,14 +2,18 @@
 
 A learner is built from the task's spaces, its own config dataclass and a seed, then:
 
-* ``act(obs)``: an action for one observation, with exploration (uses the learner's own RNG);
+* ``act(obs)``: exploring actions for a batch of observations ``(B, obs_dim)`` (e.g. one per task
+  copy), shape ``(B,)`` int64 for discrete actions or ``(B, act_dim)`` for continuous ones; uses the
+  learner's own RNG, and exploration schedules count the ``B`` transitions (one observation:
+  ``learner.act(obs[None])[0]``);
 * ``greedy(obs)``: greedy actions for a batch of observations ``(B, obs_dim)``;
 * ``value(obs)``: max_a Q(obs, a) for a batch, shape ``(B,)``;
 * ``q_values(obs)``: Q for every discrete action, shape ``(B, n_actions)`` (discrete tasks);
-* ``learn(batch)``: take a batch of transitions (usually one env step); returns a dict of
-  learning metrics (may be empty). Online learners update at once; replay and batch learners
-  store the data and update on their own schedule. Bootstrapping continues through
-  ``truncated`` and stops at ``terminated``;
+* ``learn(batch)``: take a batch of transitions (one env step of one or of ``B`` task copies);
+  returns a dict of learning metrics (may be empty). Online learners update at once; replay and
+  batch learners store the data and update on their own schedule (each learner's docstring says
+  how a batch relates to one-at-a-time updates). Bootstrapping continues through ``truncated``
+  and stops at ``terminated``;
 * ``state_dict()`` / ``load_state_dict(d)``: everything needed to resume exactly, including
   RNG states and schedule positions. Leaves are numpy arrays, torch tensors, or JSON-able
   Python scalars, strings, lists and dicts (see :mod:`qlab.checkpoint`); never pickled objects.
@@ -54,7 +58,7 @@ class Transitions:
 class Learner(Protocol):
     """What the experiment loop, the checkpoints and the diagnostics rely on."""
 
-    def act(self, obs: np.ndarray) -> Any: ...
+    def act(self, obs: np.ndarray) -> np.ndarray: ...
 
     def greedy(self, obs: np.ndarray) -> np.ndarray: ...
 

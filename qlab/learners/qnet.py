@@ -10,6 +10,12 @@ estimate of van Hasselt et al. 2016).
 The objective is the mean TD loss (squared or Huber) plus an optional L2/L1 weight penalty.
 The target network follows the online one by a periodic copy or by Polyak averaging.
 
+Batches: ``act`` takes ``(B, obs_dim)`` observations, e.g. of ``B`` task copies; ``learn`` takes a
+batch of ``B`` transitions, one per copy, and counts ``B`` environment steps, so the number of
+gradient updates per environment transition stays ``1 / update_every`` (the updates due within
+a batch are taken after it is stored). The replay keeps one stream per copy, so n-step returns
+never mix copies; every ``learn`` call must then carry the same ``B``.
+
 Randomness: network initialisation uses a ``torch.Generator`` owned by the learner (the global
 torch RNG is never read or touched); exploration and replay sampling use the learner's numpy
 ``Generator``. Both states are part of :meth:`QNetLearner.state_dict`, so with the same seed and
@@ -167,6 +173,13 @@ class QNetLearner:
         self.env_steps = 0
         self.updates = 0
 
+    @classmethod
+    def memory_bytes(cls, config: QNetConfig, observation_space: spaces.Space,
+                     action_space: spaces.Space) -> tuple[int, str]:
+        """Bytes of the replay memory (two float32 observations, action, reward and flags per slot)."""
+        obs_dim = int(np.prod(observation_space.shape or (1,)))
+        return int(config.replay_capacity) * (8 * obs_dim + 18), "replay_capacity"
+
     # --- acting ----------------------------------------------------------------------------
 
     def _q(self, obs: np.ndarray) -> torch.Tensor:
@@ -174,11 +187,17 @@ class QNetLearner:
         with torch.no_grad():
             return self.online(x)
 
-    def act(self, obs: np.ndarray) -> int:
-        """Epsilon-greedy action for one observation; epsilon follows the schedule over env steps."""
-        if self.rng.random() < self.epsilon(self.env_steps):
-            return int(self.rng.integers(self.n_actions))
-        return int(self._q(obs).argmax(dim=1)[0])
+    def act(self, obs: np.ndarray) -> np.ndarray:
+        """Epsilon-greedy actions ``(B,)`` int64 for a batch ``(B, obs_dim)``; row ``j`` explores with epsilon
+        at ``env_steps + j`` (the env steps its transition will be counted as; ties: lowest index)."""
+        obs = np.asarray(obs, dtype=np.float32).reshape(-1, self.obs_dim)
+        b = obs.shape[0]
+        explore = self.rng.random(b) < np.asarray(self.epsilon(self.env_steps + np.arange(b)))
+        action = np.empty(b, dtype=np.int64)
+        action[explore] = self.rng.integers(self.n_actions, size=int(explore.sum()))
+        if not explore.all():
+            action[~explore] = self.greedy(obs[~explore])
+        return action
 
     def greedy(self, obs: np.ndarray) -> np.ndarray:
         """Greedy actions for a batch ``(B, obs_dim)``, shape ``(B,)`` int64 (ties: lowest index)."""

@@ -21,8 +21,8 @@ from dataclasses import dataclass, field
 import numpy as np
 from gymnasium import spaces
 
-from qlab.features import GridBins, check_bins, resolve_bounds
-from qlab.learners.linear import LinearQ, QLearningConfig, function_values
+from qlab.features import FeatureConfig, GridBins, check_bins, feature_count, resolve_bounds
+from qlab.learners.linear import LinearQ, QLearningConfig, action_total, function_values
 
 
 @dataclass
@@ -48,6 +48,13 @@ class TabularQ(LinearQ):
         low, high = resolve_bounds(observation_space, config.low, config.high)
         grid = GridBins(low, high, config.bins)
         self._setup(grid, action_space, config, seed, normalise=False, initial_weight=config.initial_q)
+
+    @classmethod
+    def memory_bytes(cls, config: TabularConfig, observation_space: spaces.Space,
+                     action_space: spaces.Space) -> tuple[int, str]:
+        """Bytes of the table and its visit counts (8 + 8 per cell and action), and the settings that decide it."""
+        cells, _ = feature_count(FeatureConfig(features="grid", bins=list(config.bins)), observation_space)
+        return 16 * cells * action_total(action_space), "bins"
 
     @property
     def table(self) -> np.ndarray:

@@ -1,25 +1,66 @@
-"""qlab's control tasks, registered with gymnasium as ``qlab/<Name>-v0`` when qlab is imported."""
+"""qlab's control tasks, registered with gymnasium as ``qlab/<Name>-v0`` when qlab is imported.
+
+:data:`TASKS` is the one table of tasks: gymnasium registration, the ``task`` config group's
+options and their schemas (:mod:`qlab.config`) are all derived from it.
+"""
 
 from __future__ import annotations
+
+from dataclasses import dataclass, field
 
 import gymnasium as gym
 
 from qlab.tasks.base import ControlTask, StepOutcome
 from qlab.tasks.batch import BatchTransition, TaskBatch
 
-TASK_IDS = {
-    "qlab/Dock-v0": "qlab.tasks.registry:make_dock",
-    "qlab/Kiln-v0": "qlab.tasks.registry:make_kiln",
-    "qlab/Crane-v0": "qlab.tasks.registry:make_crane",
-    "qlab/LinearQuadratic-v0": "qlab.tasks.registry:make_linear_quadratic",
+
+@dataclass
+class LearnerSizes:
+    """Learner sizes that fit a task: a table or feature map of these sizes stays small in memory.
+
+    The learner configs read them (``bins: ${task.learner_sizes.table_bins}``), so every task
+    states defaults that fit it and a command line can still override them.
+    """
+
+    table_bins: list[int] = field(default_factory=lambda: [40])  # grid cells per dimension (tabular)
+    feature_bins: list[int] = field(default_factory=lambda: [8])  # tiles or RBF centres per dimension (linear, LSTD-Q)
+    n_tilings: int = 8  # tilings of the tile coder
+
+
+@dataclass(frozen=True)
+class TaskEntry:
+    """One task: its config-group option, gymnasium id, class (``module:Class``) and fitting learner sizes."""
+
+    option: str
+    env_id: str
+    target: str
+    sizes: LearnerSizes = field(default_factory=LearnerSizes)
+
+
+TASKS: dict[str, TaskEntry] = {
+    entry.option: entry
+    for entry in (
+        TaskEntry("dock", "qlab/Dock-v0", "qlab.tasks.dock:Dock"),
+        # 4 + dead_time_steps observation dimensions: 6 cells each keeps the table near 1e6 cells
+        TaskEntry("kiln", "qlab/Kiln-v0", "qlab.tasks.kiln:Kiln", LearnerSizes([6], [4], 4)),
+        TaskEntry("crane", "qlab/Crane-v0", "qlab.tasks.crane:Crane", LearnerSizes([20], [8], 8)),
+        TaskEntry("linear_quadratic", "qlab/LinearQuadratic-v0", "qlab.tasks.linear_quadratic:LinearQuadratic"),
+    )
 }
+
+#: gymnasium id -> ``module:Class`` of every qlab task
+TASK_IDS = {entry.env_id: entry.target for entry in TASKS.values()}
 
 
 def register_tasks() -> None:
     """Register every qlab task with gymnasium (idempotent)."""
-    for env_id, entry_point in TASK_IDS.items():
-        if env_id not in gym.registry:
-            gym.register(id=env_id, entry_point=entry_point)
+    for entry in TASKS.values():
+        if entry.env_id not in gym.registry:
+            gym.register(id=entry.env_id, entry_point="qlab.tasks.registry:make_task",
+                         kwargs={"target": entry.target})
 
 
-__all__ = ["TASK_IDS", "BatchTransition", "ControlTask", "StepOutcome", "TaskBatch", "register_tasks"]
+__all__ = [
+    "TASKS", "TASK_IDS", "BatchTransition", "ControlTask", "LearnerSizes", "StepOutcome", "TaskBatch", "TaskEntry",
+    "register_tasks",
+]

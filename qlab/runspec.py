@@ -1,0 +1,209 @@
+"""The run spec: which settings make a run what it is, and how a run is built and restored.
+
+One module owns the three things the loop, the command line and the report must agree on:
+
+* **identity**: :data:`STORAGE_KEYS` lists the settings that change only where or how a run is
+  stored or shown. They are left out of the run's digest and of its folder name; every other
+  setting (task, shaping, learner, seed, budget, evaluation, discount) changes the digest.
+  ``torch_threads`` changes floating-point bits, not meaning: it is recorded with the run, a
+  finished run is skipped whatever its value, and a resume with another value is refused.
+* **building**: the task, its shaping variant and the learner from a config, sizes checked
+  before anything large is allocated.
+* **restoring**: a run folder's final learner, from its ``config.yaml`` and checkpoint.
+"""
+
+from __future__ import annotations
+
+import hashlib
+import json
+import re
+from pathlib import Path
+from typing import Any
+
+import gymnasium as gym
+from omegaconf import DictConfig, OmegaConf
+
+from qlab.checkpoint import load_checkpoint
+from qlab.config import DEFAULT_MAX_LEARNER_MIB, flatten, to_container
+from qlab.learners import LEARNERS, Learner, build_learner, load_target
+from qlab.shaping import ShapedReward
+
+#: settings (dotted keys, or a top-level key for all below it) that say where or how a run is
+#: stored, shown or executed, not what it computes. ``study_name`` is the older name of ``series_name``.
+STORAGE_KEYS = (
+    "results_dir",
+    "series_name",
+    "study_name",
+    "tensorboard",
+    "checkpoint_every_episodes",
+    "torch_threads",
+    "learner.torch_threads",
+    "max_learner_mib",
+)
+#: the one computing setting a finished run may be extended in (a larger budget resumes it)
+BUDGET_KEY = "budget_steps"
+#: override prefixes that choose how a sweep is launched or named, never part of a run's folder name
+LAUNCH_KEYS = ("series", "hydra")
+#: folder of a run's checkpoint inside its run folder
+CHECKPOINT = "checkpoint"
+#: longest run folder name kept as it is; longer names keep a readable head and end in a digest
+MAX_NAME = 200
+
+
+def is_storage_key(key: str) -> bool:
+    """Whether the dotted config key ``key`` is a storage setting (see :data:`STORAGE_KEYS`)."""
+    return any(key == k or key.startswith(f"{k}.") for k in STORAGE_KEYS)
+
+
+def computing_settings(tree: dict[str, Any]) -> dict[str, Any]:
+    """The settings of a resolved config tree that decide what a run computes, as dotted keys."""
+    return {k: v for k, v in flatten(tree).items() if not is_storage_key(k)}
+
+
+def run_digest(tree: dict[str, Any], with_budget: bool = True) -> str:
+    """16 hex digits identifying what a run computes (without the budget: its lineage)."""
+    settings = computing_settings(tree)
+    if not with_budget:
+        settings.pop(BUDGET_KEY, None)
+    return hashlib.sha256(json.dumps(settings, sort_keys=True).encode()).hexdigest()[:16]
+
+
+def config_tree(cfg: DictConfig) -> dict[str, Any]:
+    """The resolved config as plain nested dicts."""
+    return to_container(cfg)
+
+
+def require_name(key: str, value: str) -> str:
+    """``value`` if it is one relative path component (no ``/``, not ``.``/``..``, not empty), else ``ValueError``."""
+    if not isinstance(value, str) or value in ("", ".", "..") or "/" in value or "\\" in value or "\0" in value:
+        raise ValueError(f"{key} must be a single folder name (no '/', not '', '.' or '..'), got {value!r}")
+    return value
+
+
+def run_name(overrides: list[str]) -> str:
+    """Folder name of a run: its sorted command-line overrides, minus storage and launch settings."""
+    kept = []
+    for item in overrides:
+        key = item.lstrip("+~").split("=")[0]
+        if not is_storage_key(key) and key.split(".")[0] not in LAUNCH_KEYS and key.split("/")[0] not in LAUNCH_KEYS:
+            kept.append(item.lstrip("+~"))
+    name = re.sub(r"[^A-Za-z0-9=,._+\-]", "_", ",".join(sorted(kept)) or "defaults")
+    if len(name) > MAX_NAME:  # file systems cap names at 255 bytes: keep a readable head, add a digest
+        name = f"{name[: MAX_NAME - 17]}..{hashlib.sha256(name.encode()).hexdigest()[:15]}"
+    return require_name("run name", name.lstrip(".") or "defaults")
+
+
+# --- building -------------------------------------------------------------------------------
+
+
+def make_task(task: DictConfig | dict[str, Any]) -> gym.Env:
+    """The task from its config (``task.id`` plus its parameters), unshaped; ``ValueError`` on a bad setting."""
+    params = dict(task) if isinstance(task, dict) else to_container(task)
+    env_id = params.pop("id")
+    params.pop("learner_sizes", None)
+    params = params.pop("params", params)
+    try:
+        return gym.make(env_id, **params)
+    except gym.error.Error as err:  # unknown id, wrong version, missing dependency
+        known = sorted(k for k in gym.registry if not k.startswith("qlab/"))[:8]
+        raise ValueError(f"id {env_id!r} is not a usable gymnasium id ({err}); e.g. {known}") from None
+    except TypeError as err:  # a parameter the task does not take (e.g. +task.x=1)
+        raise ValueError(str(err)) from None
+
+
+def shaped(env: gym.Env, variant: str, gamma: float, progress_scale: float | None) -> gym.Env:
+    """``env`` wrapped in a shaping variant unless ``none``."""
+    return env if variant == "none" else ShapedReward(env, variant, gamma, progress_scale)
+
+
+def make_env(cfg: DictConfig) -> gym.Env:
+    """The run's training environment: its task in its shaping variant; errors prefixed with the config group."""
+    try:
+        task = make_task(cfg.task)
+    except ValueError as err:
+        raise ValueError(f"task ({cfg.task.id}): {err}") from None
+    try:
+        return shaped(task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
+    except ValueError as err:
+        raise ValueError(f"shaping: {err}") from None
+
+
+def _mib(n_bytes: int) -> str:
+    for unit, size in (("TiB", 2**40), ("GiB", 2**30), ("MiB", 2**20)):
+        if n_bytes >= size:
+            return f"{n_bytes / size:,.1f} {unit}"
+    return f"{n_bytes / 2**20:.2f} MiB"
+
+
+def check_learner_size(kind: str, settings: dict[str, Any], env: gym.Env, limit_mib: int) -> None:
+    """Refuse, before allocation, a learner whose memory would exceed ``limit_mib``, naming the settings to lower."""
+    cls, config_cls = (load_target(t) for t in LEARNERS[kind])
+    estimate = getattr(cls, "memory_bytes", None)
+    if estimate is None:
+        return
+    config = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(config_cls), settings))
+    n_bytes, decided_by = estimate(config, env.observation_space, env.action_space)
+    if n_bytes > limit_mib * 2**20:
+        raise ValueError(
+            f"this learner would need {_mib(n_bytes)} on this task ({decided_by}: "
+            f"{', '.join(f'{k}={settings[k]}' for k in decided_by.split(', ') if k in settings)}), more than "
+            f"max_learner_mib={limit_mib}; lower {decided_by} or raise max_learner_mib"
+        )
+
+
+def make_learner(cfg: DictConfig, env: gym.Env) -> Learner:
+    """The run's learner for ``env``, sizes checked first; errors prefixed with ``learner (<kind>)``."""
+    settings = to_container(cfg.learner)
+    kind = settings.pop("kind")
+    try:
+        check_learner_size(kind, settings, env, int(cfg.get("max_learner_mib", DEFAULT_MAX_LEARNER_MIB)))
+        learner = build_learner(kind, settings, env.observation_space, env.action_space, int(cfg.seed))
+    except ValueError as err:
+        raise ValueError(f"learner ({kind}): {err}") from None
+    if cfg.shaping.start_at_potential:
+        start_at_potential(learner, kind, env)
+    return learner
+
+
+def start_at_potential(learner: Learner, kind: str, env: gym.Env) -> None:
+    """Set Q(s, a) = Phi(s) before learning (Wiewiora 2003), for learners that support it."""
+    supported = sorted(k for k, (target, _) in LEARNERS.items() if hasattr(load_target(target), "initialise_from"))
+    if not hasattr(learner, "initialise_from"):
+        raise ValueError(f"shaping.start_at_potential needs a learner in {supported}, got learner {kind!r}")
+    task = env.unwrapped
+    if not hasattr(task, "potential"):
+        raise ValueError(f"shaping.start_at_potential needs a task with a potential, got {type(task).__name__}")
+    learner.initialise_from(task.potential)
+
+
+def build_run(cfg: DictConfig) -> tuple[gym.Env, gym.Env, Learner]:
+    """Training env, evaluation env and learner of a config; a bad setting raises ``ValueError`` before any work."""
+    import torch
+
+    torch.set_num_threads(int(cfg.torch_threads))
+    env, eval_env = make_env(cfg), make_env(cfg)
+    return env, eval_env, make_learner(cfg, env)
+
+
+# --- restoring ------------------------------------------------------------------------------
+
+
+def load_config(run_dir: Path) -> DictConfig:
+    """A run folder's resolved ``config.yaml``; ``ValueError`` naming the file if it is missing or unreadable."""
+    path = Path(run_dir) / "config.yaml"
+    try:
+        cfg = OmegaConf.load(path)
+    except Exception as err:  # a missing, cut or hand-edited file
+        raise ValueError(f"{path}: unreadable config ({type(err).__name__}: {str(err).splitlines()[0]})") from None
+    if not isinstance(cfg, DictConfig) or "task" not in cfg or "learner" not in cfg:
+        raise ValueError(f"{path}: not a qlab run config (no task or learner)")
+    return cfg
+
+
+def restore_learner(run_dir: Path, cfg: DictConfig | None = None) -> tuple[Learner, Any]:
+    """A run's final learner (from its checkpoint) and its unwrapped task; ``ValueError`` naming the file."""
+    cfg = load_config(run_dir) if cfg is None else cfg
+    env = make_env(cfg)
+    learner = make_learner(cfg, env)
+    learner.load_state_dict(load_checkpoint(Path(run_dir) / CHECKPOINT)["learner"])
+    return learner, env.unwrapped
