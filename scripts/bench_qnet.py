@@ -46,7 +46,7 @@ def _learner_loop(n_steps: int, seed: int) -> tuple[float, int]:
     obs, _ = env.reset(seed=seed)
     start = time.perf_counter()
     for _ in range(n_steps):
-        action = learner.act(obs)
+        action = learner.act(obs[None])[0]
         next_obs, reward, terminated, truncated, _ = env.step(action)
         learner.learn(Transitions.single(obs, action, reward, next_obs, terminated, truncated))
         obs = env.reset()[0] if terminated or truncated else next_obs
@@ -99,13 +99,14 @@ def _bare_loop(n_steps: int, seed: int) -> tuple[float, int]:
 
 def _dock_batched(n_copies: int, n_steps: int, seed: int) -> float:
     """Seconds for ``n_steps`` steps of ``n_copies`` Dock copies in one TaskBatch (done copies reset)."""
-    batch = TaskBatch(gym.make("qlab/Dock-v0").unwrapped, n_copies, seed)
+    batch = TaskBatch(gym.make("qlab/Dock-v0").unwrapped, n_copies)
     rng = np.random.default_rng(seed)
+    batch.reset(None, seed + np.arange(n_copies))
     start = time.perf_counter()
     for _ in range(n_steps):
         batch.step(rng.integers(0, 5, n_copies))
         if batch.done.any():
-            batch.reset(batch.done)
+            batch.reset(batch.done, rng.integers(0, 2**31, int(batch.done.sum())))
     return time.perf_counter() - start
 
 

@@ -76,7 +76,8 @@ def test_end_of_schedule_is_terminated_not_truncated() -> None:
     assert flags[-1] == (True, False)
     assert all(f == (False, False) for f in flags[:-1])
 
-    batch = TaskBatch(Kiln(), n=3, seed=2)
+    batch = TaskBatch(Kiln(), n=3)
+    batch.reset(None, [2, 3, 4])
     for k in range(batch.task.schedule_steps):
         tr = batch.step(np.full(3, 2))
         assert np.all(tr.terminated == (k == batch.task.schedule_steps - 1))

@@ -86,7 +86,7 @@ def test_linear_q_state_dict_round_trip(tmp_path):
     def run(learner: LinearQ, steps: int, seed: int) -> list[int]:
         rng, x, actions = np.random.default_rng(seed), np.zeros(2, dtype=np.float32), []
         for t in range(steps):
-            a = learner.act(x)
+            a = learner.act(x[None])[0]
             x_next = np.clip(x + 0.1 * (a - 1) + 0.05 * rng.normal(size=2), -1, 1).astype(np.float32)
             learner.learn(Transitions.single(x, a, -float(np.sum(x_next**2)), x_next, False, t % 50 == 49))
             actions.append(a)
@@ -103,6 +103,59 @@ def test_linear_q_state_dict_round_trip(tmp_path):
         assert run(restored, 200, seed=5) == continued
         np.testing.assert_array_equal(original.weights, restored.weights)
         np.testing.assert_array_equal(original.visits, restored.visits)
+
+
+def two_state_tiles() -> LinearQ:
+    """Observations in [0, 1], 2 uniform tilings of 1 tile width: x = 0.25 has features {0, 2}, x = 0.75 has
+    {0, 3} (feature 0 shared), so |phi|^2 = 2; two actions, gamma 0.9, normalised constant step 0.5."""
+    config = LinearConfig(features="tiles", bins=[1], n_tilings=2, tile_offsets="uniform", gamma=0.9,
+                          step_size=ScheduleConfig("constant", 0.5))
+    learner = LinearQ(spaces.Box(0.0, 1.0, shape=(1,), dtype=np.float32), spaces.Discrete(2), config, seed=0)
+    learner.weights[:] = [[0.5, 1.0], [0.0, 0.0], [1.0, 0.0], [2.0, 1.0]]  # W[feature, action]
+    return learner
+
+
+def test_linear_batch_update_on_two_states_by_hand():
+    # semi-gradient Q-learning (Sutton & Barto 2018, eq. 6.8 with the gradient of sec. 10.1), step alpha / |phi|^2.
+    # Q(A, .) = [0.5 + 1, 1 + 0] = [1.5, 1], Q(B, .) = [0.5 + 2, 1 + 1] = [2.5, 2] for A = 0.25, B = 0.75.
+    # TD errors, all from the weights before the batch:
+    #   (A, a=0, r=1, B, continues):  delta = 1 + 0.9 * 2.5 - 1.5 = 1.75
+    #   (B, a=0, r=0, A, terminated): delta = 0 - 2.5 = -2.5
+    #   (B, a=1, r=2, A, truncated):  delta = 2 + 0.9 * 1.5 - 2 = 1.35
+    # each active weight moves by alpha times the mean of delta / 2 over the transitions that touch it:
+    #   W[0, 0] = 0.5 + 0.5 * (1.75 - 2.5) / 4 = 0.40625   W[2, 0] = 1 + 0.5 * 1.75 / 2 = 1.4375
+    #   W[3, 0] = 2 - 0.5 * 2.5 / 2 = 1.375               W[0, 1] = 1 + 0.5 * 1.35 / 2 = 1.3375
+    #   W[3, 1] = 1 + 0.5 * 1.35 / 2 = 1.3375             W[1, :], W[2, 1] unchanged
+    learner = two_state_tiles()
+    a, b = [0.25], [0.75]
+    batch = Transitions(np.array([a, b, b], dtype=np.float32), np.array([0, 0, 1]), np.array([1.0, 0.0, 2.0]),
+                        np.array([b, a, a], dtype=np.float32), np.array([False, True, False]),
+                        np.array([False, False, True]))
+    learner.learn(batch)
+    expected = [[0.40625, 1.3375], [0.0, 0.0], [1.4375, 0.0], [1.375, 1.3375]]
+    np.testing.assert_allclose(learner.weights, expected, rtol=1e-14)
+    np.testing.assert_array_equal(learner.visits, [[2, 1], [0, 0], [1, 0], [1, 1]])
+    # a batch of one is the plain update: the first transition alone moves W[0, 0] and W[2, 0] by 0.5 * 1.75 / 2
+    single = two_state_tiles()
+    single.learn(Transitions.single(a, 0, 1.0, b, False, False))
+    np.testing.assert_allclose(single.weights, [[0.9375, 1.0], [0.0, 0.0], [1.4375, 0.0], [2.0, 1.0]], rtol=1e-14)
+
+
+def test_linear_act_on_one_observation_repeats_the_one_row_rule():
+    # epsilon-greedy for one observation (Sutton & Barto 2018, sec. 2.3) in the draw order used before batches
+    learner = two_state_tiles()
+    learner.weights[:, 1] = [0.5, 0.0, 1.0, 2.5]  # Q(A, .) = [1.5, 1.5] ties (a tie pick draws), Q(B, .) = [2.5, 3]
+    rng, epsilon = np.random.default_rng(0), 0.1
+    for t in range(60):
+        x = np.array([[0.25 if t % 3 else 0.75]], dtype=np.float32)
+        q = learner.q_values(x)[0]
+        if rng.random() < epsilon:
+            expected = int(rng.integers(q.size))
+        else:
+            best = np.flatnonzero(q == q.max())
+            expected = int(best[rng.integers(best.size)]) if best.size > 1 else int(best[0])
+        assert learner.act(x)[0] == expected
+    assert learner.act_count == 60
 
 
 @pytest.mark.parametrize(
@@ -197,7 +250,7 @@ def run_lq(env: gym.Env, learner: LSTDQ, steps: int, seed: int) -> list[np.ndarr
     obs, _ = env.reset(seed=seed)
     actions = []
     for _ in range(steps):
-        u = learner.act(obs)
+        u = learner.act(obs[None])[0]
         next_obs, reward, terminated, truncated, _ = env.step(u)
         learner.learn(Transitions.single(obs, u, reward, next_obs, terminated, truncated))
         actions.append(u)
@@ -223,6 +276,28 @@ def test_lstdq_recovers_the_lq_q_function_and_gain():
     np.testing.assert_allclose(learner.value(x), learner.q(x, learner.greedy(x)))
     with pytest.raises(ValueError, match="q_values needs a finite action set"):
         learner.q_values(x)
+
+
+def test_lstdq_act_on_a_batch():
+    # continuous: greedy control -K0 x plus Gaussian noise N(0, exploration_std^2) per row (Bradtke, Ydstie &
+    # Barto 1994); one observation draws as before batches, one standard normal per control dimension
+    _, learner = lq_learner(seed=4)
+    x = np.array([[0.4, -0.7]], dtype=np.float32)
+    rng = np.random.default_rng(4)
+    for _ in range(5):
+        expected = -x[0] @ np.array(K0).T + 0.5 * rng.standard_normal(1)
+        np.testing.assert_array_equal(learner.act(x)[0], expected.astype(np.float32))
+    u = learner.act(np.repeat(x, 4000, axis=0))
+    assert u.shape == (4000, 1) and u.dtype == np.float32 and learner.act_count == 4005
+    noise = u[:, 0] + x[0] @ np.array(K0)[0]
+    assert abs(noise.mean()) < 3 * 0.5 / np.sqrt(4000) and noise.std() == pytest.approx(0.5, rel=0.05)
+    # discrete: epsilon-greedy indices, one per row, epsilon counted per row
+    config = LSTDQConfig(features="grid", bins=[N_STATES], epsilon=ScheduleConfig("linear", 1.0, 0.0, 5.0))
+    discrete = LSTDQ(state_space(), spaces.Discrete(N_ACTIONS), config, seed=0)
+    discrete.head.weights[:] = np.arange(discrete.head.n_params)  # action 1 is greedy everywhere
+    actions = discrete.act(np.tile(all_states(), (2, 1)))
+    assert actions.shape == (10,) and actions.dtype == np.int64 and discrete.act_count == 10
+    np.testing.assert_array_equal(discrete.act(all_states()), 1)  # count >= 5: epsilon 0
 
 
 def test_lstdq_state_dict_round_trip_continuous(tmp_path):
@@ -255,7 +330,7 @@ def test_lstdq_state_dict_round_trip_discrete(tmp_path):
     def run(learner: LSTDQ, steps: int, seed: int) -> list[int]:
         rng, s, actions = np.random.default_rng(seed), 0, []
         for _ in range(steps):
-            a = learner.act(np.array([s], dtype=np.float32))
+            a = learner.act(np.array([[s]], dtype=np.float32))[0]
             s_next = int(rng.choice(N_STATES, p=P[a, s]))
             learner.learn(Transitions.single([s], a, R[s, a], [s_next], False, False))
             actions.append(a)

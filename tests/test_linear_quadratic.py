@@ -108,7 +108,8 @@ def test_discrete_levels_are_evenly_spaced_within_the_bound():
 def test_batched_step_equals_single_steps():
     # N copies stepped together vs one at a time through the gymnasium interface (noise-free)
     n = 7
-    batch = TaskBatch(LinearQuadratic(A=A3, B=B3, Q=Q3, R=R3, control_bound=1.0), n=n, seed=3)
+    batch = TaskBatch(LinearQuadratic(A=A3, B=B3, Q=Q3, R=R3, control_bound=1.0), n=n)
+    batch.reset(None, np.arange(n))
     start = batch.state.copy()
     actions = np.random.default_rng(4).normal(scale=2.0, size=(n, 2)).astype(np.float32)
     out = batch.step(actions)

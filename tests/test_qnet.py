@@ -12,6 +12,7 @@ from gymnasium import spaces
 
 import qlab  # noqa: F401  (registers the qlab tasks)
 from qlab.checkpoint import load_checkpoint, save_checkpoint
+from qlab.copies import make_copies
 from qlab.learners.protocol import Learner, Transitions
 from qlab.learners.qnet import QNetConfig, QNetLearner, bootstrap_values
 from qlab.learners.schedules import ScheduleConfig
@@ -152,7 +153,7 @@ def _train(seed: int, n_episodes: int, ckpt=None, stop_after: int | None = None,
         obs, _ = env.reset(seed=reset_seed)
         total, done = 0.0, False
         while not done:
-            action = learner.act(obs)
+            action = learner.act(obs[None])[0]
             next_obs, reward, terminated, truncated, _ = env.step(action)
             learner.learn(Transitions.single(obs, action, reward, next_obs, terminated, truncated))
             obs, total, done = next_obs, total + reward, terminated or truncated
@@ -221,7 +222,8 @@ def test_learner_honours_the_protocol_shapes():
     assert q.shape == (8, 4)
     np.testing.assert_array_equal(learner.greedy(obs), q.argmax(axis=1))
     np.testing.assert_allclose(learner.value(obs), q.max(axis=1))
-    assert learner.act(obs[0]) in range(4)
+    actions = learner.act(obs)
+    assert actions.shape == (8,) and actions.dtype == np.int64 and set(actions) <= set(range(4))
 
 
 def test_no_update_before_warmup_then_every_k_steps():
@@ -302,3 +304,64 @@ def test_only_discrete_actions_and_flat_boxes():
         QNetLearner(box, spaces.Box(-1.0, 1.0, (1,)), QNetConfig(), seed=0)
     with pytest.raises(ValueError, match="observation_space"):
         QNetLearner(spaces.Discrete(3), spaces.Discrete(2), QNetConfig(), seed=0)
+
+
+def test_act_on_one_observation_repeats_the_one_row_rule():
+    # epsilon-greedy (Sutton & Barto 2018, sec. 2.3) with epsilon at the env-step count and ties to the lowest
+    # index, in the draw order used before acting on batches: a uniform, then a random action if exploring
+    learner, batch = _filled_learner(QNetConfig(epsilon=ScheduleConfig("linear", 1.0, 0.0, 40.0)))
+    rng = np.random.default_rng(0)
+    for t in range(40):
+        obs = batch.obs[t % 8][None]
+        explore = rng.random() < learner.epsilon(learner.env_steps)
+        expected = int(rng.integers(4)) if explore else int(learner.q_values(obs)[0].argmax())
+        assert learner.act(obs)[0] == expected
+        learner.learn(Transitions.single(obs[0], expected, 0.0, obs[0], False, False))  # one env step
+    assert learner.rng.bit_generator.state == rng.bit_generator.state
+    np.testing.assert_array_equal(learner.act(batch.obs), learner.greedy(batch.obs))  # 40 steps on: epsilon 0
+
+
+def test_copies_keep_their_own_n_step_returns_end_to_end():
+    # n-step return (Sutton & Barto 2018, eq. 7.1): r_t + gamma r_t+1 + ... + gamma^(m-1) r_t+m-1, bootstrapped
+    # with gamma^m unless the last step terminated, summed along one copy's own episode, m <= n. Four Dock
+    # copies act, step and learn as one batch per step; episodes end at different times in different copies.
+    n_copies, gamma, n_step = 4, 0.9, 3
+    dock = {"velocity_noise_m_s": 0.05, "start_distance_m": (2.0, 4.0), "max_steps": 9}
+    copies = make_copies(lambda: gym.make("qlab/Dock-v0", **dock), n_copies, "potential", gamma)
+    cfg = QNetConfig(hidden_sizes=[8], gamma=gamma, batch_size=8, replay_capacity=1024, warmup_steps=32,
+                     update_every=4, n_step=n_step, epsilon=ScheduleConfig("constant", 0.5))
+    learner = QNetLearner(copies.observation_space, copies.action_space, cfg, seed=0)
+    episodes: list[list[list[tuple]]] = [[[]] for _ in range(n_copies)]  # copy -> episodes -> transitions
+    copies.reset(None, np.arange(n_copies))
+    for t in range(40):
+        ended = copies.done.copy()
+        if ended.any():
+            copies.reset(ended, 100 * (t + 1) + np.flatnonzero(ended))
+            for i in np.flatnonzero(ended):
+                episodes[i].append([])
+        step = copies.step(learner.act(copies.observe()))
+        learner.learn(Transitions(step.obs, step.action, step.reward, step.next_obs, step.terminated, step.truncated))
+        for i in range(n_copies):
+            episodes[i][-1].append((step.obs[i], step.action[i], step.reward[i], step.next_obs[i], step.terminated[i]))
+    assert learner.env_steps == 160 and learner.updates == (160 - 32) // 4 + 1  # one update per 4 transitions
+    ends = [len(e) for copy in episodes for e in copy[:-1]]
+    assert len(set(ends)) > 1 and sum(e[-1][4] for copy in episodes for e in copy[:-1]) > 0  # terminations too
+
+    expected = {}
+    for copy in episodes:
+        for episode in copy:
+            for p, (obs, action, *_rest) in enumerate(episode):
+                following = episode[p : p + n_step]
+                ret = sum(gamma**k * tr[2] for k, tr in enumerate(following))
+                discount = 0.0 if following[-1][4] else gamma ** len(following)
+                key = obs.tobytes()
+                assert key not in expected  # observations identify transitions
+                expected[key] = (action, ret, following[-1][3], discount)
+    sample = learner.replay.gather(np.arange(len(learner.replay)))
+    assert len(learner.replay) == len(expected) == 160
+    for k in range(160):
+        action, ret, bootstrap_obs, discount = expected[sample.obs[k].tobytes()]
+        assert sample.action[k] == action
+        assert sample.reward[k] == pytest.approx(ret, rel=1e-12, abs=1e-12)
+        np.testing.assert_array_equal(sample.next_obs[k], bootstrap_obs)
+        assert sample.discount[k] == pytest.approx(discount, rel=1e-12)

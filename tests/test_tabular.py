@@ -102,8 +102,8 @@ def test_epsilon_schedule_counts_act_calls():
     learner = TabularQ(state_space(), spaces.Discrete(N_ACTIONS), config, seed=4)
     learner.table[:] = np.random.default_rng(5).normal(size=learner.table.shape)
     obs = all_states()
-    early = [learner.act(obs[i % N_STATES]) for i in range(50)]
-    late = [learner.act(obs[i % N_STATES]) for i in range(50)]
+    early = [learner.act(obs[i % N_STATES][None])[0] for i in range(50)]
+    late = [learner.act(obs[i % N_STATES][None])[0] for i in range(50)]
     greedy = learner.greedy(obs)
     assert late == [greedy[i % N_STATES] for i in range(50)]
     assert early != [greedy[i % N_STATES] for i in range(50)]
@@ -123,7 +123,7 @@ def test_state_dict_round_trip_continues_identically(tmp_path):
     def run(learner: TabularQ, steps: int, seed: int) -> list[int]:
         rng, s, actions = np.random.default_rng(seed), 0, []
         for _ in range(steps):
-            a = learner.act(np.array([s], dtype=np.float32))
+            a = learner.act(np.array([[s]], dtype=np.float32))[0]
             s_next = int(rng.choice(N_STATES, p=P[a, s]))
             learner.learn(Transitions.single([s], a, R[s, a], [s_next], False, False))
             actions.append(a)
@@ -175,3 +175,72 @@ def test_bad_spaces_raise():
         TabularQ(spaces.Box(-np.inf, np.inf, shape=(2,)), spaces.Discrete(2), TabularConfig(), seed=0)
     with pytest.raises(ValueError, match=r"bins must hold one value .* one per observation dimension \(1\)"):
         TabularQ(state_space(), spaces.Discrete(2), TabularConfig(bins=[3, 3]), seed=0)
+
+
+def two_state_table() -> TabularQ:
+    """Two states (observations 0 and 1), two actions, gamma 0.9, constant step 0.5, Q = [[1, 0], [2, 4]]."""
+    config = TabularConfig(gamma=0.9, bins=[2], step_size=ScheduleConfig("constant", 0.5))
+    learner = TabularQ(spaces.Box(-0.5, 1.5, shape=(1,), dtype=np.float32), spaces.Discrete(2), config, seed=0)
+    learner.table[:] = [[1.0, 0.0], [2.0, 4.0]]
+    return learner
+
+
+def test_batch_update_on_two_states_by_hand():
+    # Q-learning (Watkins 1989; Sutton & Barto 2018, eq. 6.8): Q(s,a) += alpha [r + gamma max_b Q(s',b) - Q(s,a)],
+    # no bootstrap after a termination. A batch takes every TD error from the table before it and moves an
+    # entry by alpha times the mean of its TD errors. By hand, alpha = 0.5, gamma = 0.9, Q = [[1, 0], [2, 4]]:
+    #   (s=0, a=0, r=1,  s'=1, continues):  delta = 1 + 0.9 * 4 - 1 = 3.6
+    #   (s=0, a=0, r=0,  s'=0, terminated): delta = 0 - 1 = -1
+    #   (s=1, a=1, r=-1, s'=0, truncated):  delta = -1 + 0.9 * 1 - 4 = -4.1
+    #   Q[0, 0] = 1 + 0.5 * (3.6 - 1) / 2 = 1.65;  Q[1, 1] = 4 + 0.5 * -4.1 = 1.95;  Q[0, 1], Q[1, 0] unchanged
+    # (one at a time the same three would give Q[0, 0] = 1.4 and Q[1, 1] = 2.13)
+    learner = two_state_table()
+    obs = np.array([[0.0], [0.0], [1.0]], dtype=np.float32)
+    next_obs = np.array([[1.0], [0.0], [0.0]], dtype=np.float32)
+    batch = Transitions(obs, np.array([0, 0, 1]), np.array([1.0, 0.0, -1.0]), next_obs,
+                        np.array([False, True, False]), np.array([False, False, True]))
+    metrics = learner.learn(batch)
+    np.testing.assert_allclose(learner.table, [[1.65, 0.0], [2.0, 1.95]], rtol=1e-14)
+    np.testing.assert_array_equal(learner.visits, [[2, 0], [0, 1]])
+    assert metrics["abs_td_error"] == pytest.approx((3.6 + 1.0 + 4.1) / 3, rel=1e-14)
+    # a batch of one is the plain update: the first transition alone gives Q[0, 0] = 1 + 0.5 * 3.6 = 2.8
+    single = two_state_table()
+    single.learn(Transitions.single([0.0], 0, 1.0, [1.0], False, False))
+    np.testing.assert_allclose(single.table, [[2.8, 0.0], [2.0, 4.0]], rtol=1e-14)
+
+
+def one_row_rule(q: np.ndarray, epsilon: float, rng: np.random.Generator) -> int:
+    """Epsilon-greedy for one observation (Sutton & Barto 2018, sec. 2.3), random tie-breaking, in the draw
+    order the learners used before acting on batches: a uniform, then an action or a tie pick."""
+    if rng.random() < epsilon:
+        return int(rng.integers(q.size))
+    best = np.flatnonzero(q == q.max())
+    return int(best[rng.integers(best.size)]) if best.size > 1 else int(best[0])
+
+
+def test_act_on_one_observation_repeats_the_one_row_rule():
+    config = TabularConfig(bins=[N_STATES], epsilon=ScheduleConfig("linear", start=1.0, end=0.1, horizon=60.0))
+    learner = TabularQ(state_space(), spaces.Discrete(N_ACTIONS), config, seed=6)
+    learner.table[:] = [[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [2.0, 2.0], [0.5, 0.0]]  # ties in states 0 and 3
+    rng, schedule = np.random.default_rng(6), config.epsilon.build("epsilon")
+    obs = all_states()
+    for t in range(100):
+        q = learner.q_values(obs[t % N_STATES][None])[0]
+        assert learner.act(obs[t % N_STATES][None])[0] == one_row_rule(q, schedule(t), rng)
+    assert learner.rng.bit_generator.state == rng.bit_generator.state
+
+
+def test_act_on_a_batch_counts_every_row_and_breaks_ties_at_random():
+    # epsilon falls linearly from 1 to 0 over 8 transitions: a first batch of 8 rows uses epsilon 1, 7/8, ...,
+    # 1/8 (row j at count j) and advances the count by 8, so every row of the next batch is greedy
+    config = TabularConfig(bins=[N_STATES], epsilon=ScheduleConfig("linear", start=1.0, end=0.0, horizon=8.0))
+    learner = TabularQ(state_space(), spaces.Discrete(N_ACTIONS), config, seed=1)
+    learner.table[:] = [[0.0, 0.0], [1.0, 0.0], [0.0, 1.0], [2.0, 2.0], [0.5, 0.0]]
+    obs = np.tile(all_states(), (40, 1))  # 200 rows
+    first = learner.act(obs[:8])
+    assert first.shape == (8,) and first.dtype == np.int64 and learner.act_count == 8
+    actions = learner.act(obs)
+    assert learner.act_count == 208
+    np.testing.assert_array_equal(actions[[1, 2, 4]], [0, 1, 0])  # unique maxima
+    tied = actions.reshape(40, N_STATES)[:, [0, 3]]
+    assert set(tied[:, 0]) == set(tied[:, 1]) == {0, 1}  # both tied actions chosen, 40 draws each

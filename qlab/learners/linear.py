@@ -9,8 +9,9 @@ tile coding this is the usual ``alpha / n_tilings``), else 1.
 Batches (e.g. one step of ``B`` task copies): all TD errors use the weights from before the
 batch; each weight moves by its step size times the average of ``delta * phi_i / n`` over the
 transitions of the batch in which feature ``i`` is active for the action taken (a batch of one is
-the plain update). So a batch equals ``B`` one-at-a-time updates only when no weight is touched
-twice and no TD error reads a weight the batch changes; otherwise it is the averaged update.
+the plain update). A batch therefore equals its ``B`` transitions learned one at a time only when
+no weight is touched twice, no TD error reads a weight the batch changes and the step size stays
+the same; otherwise it is this averaged update.
 
 Step sizes: ``step_size_count="step"`` evaluates the schedule at the number of transitions
 learned so far; ``"visits"`` at the number of earlier updates of that weight with its feature
