@@ -11,7 +11,6 @@ import csv
 import json
 import re
 import shutil
-from html.parser import HTMLParser
 from pathlib import Path
 
 import numpy as np
@@ -19,16 +18,18 @@ import pytest
 import scipy.linalg
 from hydra import compose, initialize_config_dir
 from matplotlib.colors import to_hex
+from omegaconf import OmegaConf
 from scipy.stats import mannwhitneyu, trim_mean, uniform
+from test_markup import Page
 
 from qlab.compare import figures, stats
 from qlab.compare.exact import restore
-from qlab.compare.markup import markdown_to_html
 from qlab.compare.report import main
 from qlab.compare.runs import MAX_SETTING_NAME, START_AT_POTENTIAL_ARM, eval_matrix, load_study, setting_folder
 from qlab.compare.selection import select, swept_keys
 from qlab.config import CONFIG_DIR, register_configs
 from qlab.experiment import run_experiment
+from qlab.recording import file_digest
 
 TINY = ["task.start_distance_m=[8,12]", "budget_steps=1500", "evaluation.every_steps=500", "evaluation.episodes=3",
         "learner=tabular", "tensorboard=false"]
@@ -294,6 +295,7 @@ def shift_returns(run: Path, by: float) -> None:
         writer.writerows(rows)
     summary = json.loads((run / "summary.json").read_text())
     summary["final"]["discounted_return"] += by
+    summary["metrics_sha256"] = file_digest(path)  # as if the run had recorded these values
     (run / "summary.json").write_text(json.dumps(summary))
 
 
@@ -382,45 +384,62 @@ def test_setting_folder_names_are_short_safe_and_distinct():
     assert names[0] == setting_folder({"task.id": "qlab/Dock-v0", "task.start_distance_m": (10.0, 20.0)})
 
 
-class Elements(HTMLParser):
-    """The anchors (href, text), code spans and bold spans of a page, decoded by the standard library's parser."""
-
-    def __init__(self) -> None:
-        super().__init__(convert_charrefs=True)
-        self.found: dict[str, list] = {"a": [], "code": [], "strong": []}
-        self.open: list[tuple[str, str | None, list[str]]] = []
-
-    def handle_starttag(self, tag, attrs):
-        if tag in self.found:
-            self.open.append((tag, dict(attrs).get("href"), []))
-
-    def handle_data(self, data):
-        for _, _, text in self.open:
-            text.append(data)
-
-    def handle_endtag(self, tag):
-        if tag in self.found:
-            name, href, text = self.open.pop()
-            assert name == tag  # properly nested
-            self.found[tag].append((href, "".join(text)) if tag == "a" else "".join(text))
+#: hostile names: the study folder, an unreadable folder in it ("/" cannot be in a folder name) and config strings
+HOSTILE_STUDY = "<img src=x onerror=alert(1)> *study* [x](javascript:alert(1))"
+HOSTILE_FOLDER = "<script>alert(1)"
+HOSTILE_NOTES = {"none": "a|b <script>alert(1)", "potential": "[y](javascript:alert(2))",
+                 "potential_start": "*bold* `tick` &amp;"}
 
 
-def test_markdown_links_point_at_html_pages_and_are_escaped(tmp_path):
-    text = ('- [A & <b> "c"](sub/report.md): x < y & z\n'
-            "- back to [the study](../report.md#summary), [a query](page.md?a=1&b=2) and "
-            "[elsewhere](https://example.org/notes.md)\n"
-            "- `[not a link](x.md)` and **[bold](y.md)** and [no bold](a**b**.md)\n")
-    page = markdown_to_html(text, "links", tmp_path)
-    # html.parser (Python standard library) decodes character references as the HTML standard does
-    parsed = Elements()
-    parsed.feed(page)
-    parsed.close()
-    assert parsed.found["a"] == [("sub/report.html", 'A & <b> "c"'), ("../report.html#summary", "the study"),
-                                 ("page.html?a=1&b=2", "a query"), ("https://example.org/notes.md", "elsewhere"),
-                                 ("y.html", "bold"), ("a**b**.html", "no bold")]
-    assert parsed.found["code"] == ["[not a link](x.md)"]
-    assert parsed.found["strong"] == ["bold"]
-    assert "<b>" not in page and "x &lt; y &amp; z" in page
+def hostile_copy(study: Path, tmp_path: Path) -> Path:
+    """The study copied under a hostile folder name, each arm given its own hostile ``learner.note`` (a sweep key)."""
+    folder = Path(shutil.copytree(study, tmp_path / HOSTILE_STUDY))
+    (folder / HOSTILE_FOLDER).mkdir()
+    for arm_folder, note in HOSTILE_NOTES.items():
+        for run in folder.glob(f"shaping={arm_folder},seed=*"):
+            config = OmegaConf.load(run / "config.yaml")
+            config.learner.note = note
+            OmegaConf.save(config, run / "config.yaml")
+    return folder
+
+
+def assert_inert(page: Page) -> None:
+    """No script, no event handler, no link target, and images only the embedded PNG figures."""
+    assert "script" not in page.tags()
+    assert not any(key.startswith("on") for _, attrs, _ in page.elements for key in attrs)
+    for attrs, _ in page.find("img"):
+        assert attrs["src"].startswith("data:image/png;base64,")
+
+
+def test_hostile_names_come_out_as_text_in_a_real_report(study, tmp_path):
+    folder = hostile_copy(study, tmp_path)
+    assert main([str(folder), "--no-diagnostics"]) == 0
+    # html.parser (Python standard library) decodes the page as a browser does
+    page = Page((folder / "report.html").read_text())
+    assert_inert(page)
+    assert all(attrs.get("href") is None for attrs, _ in page.find("a"))
+    assert page.find("h1") == [({}, f"Comparison report: {HOSTILE_STUDY}")]
+    assert f"Folders without a config.yaml, not read as runs: {HOSTILE_FOLDER}." in [t for _, t in page.find("li")]
+    cells = [t for _, t in page.find("td")]
+    rows = [cells[i : i + 8] for i in range(0, 8 * len(ARMS), 8)]  # the Runs table comes first, 8 cells a row
+    assert {row[1]: row[7] for row in rows} == {ARMS[a]: f"learner.note={note!r}" for a, note in HOSTILE_NOTES.items()}
+    assert "tabular sweeps learner.note: each arm" in "".join(t for _, t in page.find("li"))
+
+
+def test_a_hostile_study_name_links_back_as_text(delay, tmp_path):
+    def reports(where: str, names: list[str]) -> list[str]:
+        """What the delay study's own test wrote beside its runs: left out of the copy."""
+        return [n for n in names if not n.startswith("delay=")] if Path(where) == delay else []
+
+    folder = Path(shutil.copytree(delay, tmp_path / HOSTILE_STUDY, ignore=reports))
+    assert main([str(folder), "--no-diagnostics"]) == 0
+    top = Page((folder / "report.html").read_text())
+    assert_inert(top)
+    assert top.find("h1") == [({}, f"Comparison report: {HOSTILE_STUDY}")]
+    for _, setting_folder_name in DELAYS.values():
+        page = Page((folder / setting_folder_name / "report.html").read_text())
+        assert_inert(page)
+        assert [(attrs.get("href"), text) for attrs, text in page.find("a")] == [("../report.html", HOSTILE_STUDY)]
 
 
 LQ_TINY = ["task=linear_quadratic", "learner=lstdq", "learner.features=quadratic", "learner.refit_every=250",

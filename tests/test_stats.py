@@ -78,6 +78,25 @@ def test_bootstrap_ci_matches_scipy_percentile_bootstrap(statistic, confidence):
     assert np.all(np.abs(high - res.confidence_interval.high) <= tol)
 
 
+@pytest.mark.parametrize(("statistic", "n_runs"), [(np.mean, 8), (iqm, 12)], ids=["mean", "iqm"])
+def test_bootstrap_ci_of_a_learning_curve_matches_scipy_point_by_point(statistic, n_runs):
+    # A band as the report draws it, 41 evaluation points at once; each point has its own scale and an offset of
+    # its index, so an interval computed on the wrong point (a mixed-up axis) misses by about 1.
+    n_points, n_resamples = 41, 20_000
+    rng = np.random.default_rng(18)
+    samples = rng.gamma(2.0, size=(n_runs, n_points)) * np.linspace(0.1, 3.0, n_points) + np.arange(n_points)
+    res = stats.bootstrap(  # scipy.stats.bootstrap, percentile method, one interval per point
+        (samples,), statistic, n_resamples=n_resamples, method="percentile", axis=0, vectorized=True,
+        rng=np.random.default_rng(19),
+    )
+    low, high = bootstrap_ci(samples, statistic, 0.95, n_resamples, seed=20)
+    tol = mc_tolerance(res.bootstrap_distribution.T, 0.95, n_resamples)
+    assert tol.max() < 0.5  # sharp enough to tell neighbouring points apart
+    assert low.shape == high.shape == (n_points,)
+    assert np.all(np.abs(low - res.confidence_interval.low) <= tol)
+    assert np.all(np.abs(high - res.confidence_interval.high) <= tol)
+
+
 def test_bootstrap_ci_of_one_dimensional_samples_is_scalar_shaped():
     samples = np.random.default_rng(4).normal(size=25)
     res = stats.bootstrap(  # scipy.stats.bootstrap, percentile method

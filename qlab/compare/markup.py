@@ -1,11 +1,13 @@
-"""The small Markdown subset the report writes, turned into one self-contained HTML page.
+"""Markdown of the report: names written as literal text, and a page turned into one self-contained HTML file.
 
-Blocks: ``#``/``##``/``###`` headings, pipe tables (header, separator, rows), ``- `` lists
-(indented items nest one level),
-``> `` notes, a line holding only ``![alt](file.png)`` (embedded as a base64 PNG read from
-``figure_dir``) and paragraphs. Inline: ``**bold**``, ```code``` and links ``[text](url)``; a
-link to a local ``.md`` page points at its ``.html`` page instead (the report writes both).
-Everything else is text, escaped.
+:func:`md_literal` escapes a name (run folder, learner, arm, config value, task-setting label)
+where it enters ``report.md``, so it reads as the text it is in any CommonMark renderer.
+:func:`markdown_to_html` renders with the ``markdown`` package and its ``tables`` extension, with
+three guarantees of its own: raw HTML in the Markdown is shown as text, never as tags; a link keeps
+its target only when it is a relative path or an http(s) URL (a local ``.md`` page points at its
+``.html`` page, which the report writes beside it); and every image is a PNG in the figure folder,
+embedded as a base64 data URI, so the page needs no other file. Emphasis is ``**bold**`` only (the
+report writes no other), so a lone star, as in ``V*(s0)``, stays a star.
 """
 
 from __future__ import annotations
@@ -13,14 +15,24 @@ from __future__ import annotations
 import base64
 import html
 import re
+import string
 from pathlib import Path
-from urllib.parse import urlsplit
+from xml.etree.ElementTree import Element
 
-_IMAGE = re.compile(r"^!\[(?P<alt>[^\]]*)\]\((?P<src>[^)\s]+)\)$")
-_BOLD = re.compile(r"\*\*(.+?)\*\*")
-# a code span, or a link outside one (not an image): ``[text](url)``
-_SPAN = re.compile(r"`(?P<code>[^`]+)`|(?<!!)\[(?P<text>[^\[\]]+)\]\((?P<url>[^()\[\]\s]+)\)")
-_ANCHOR = "<a>"  # an anchor before its href is filled in (escaped text never holds a bare "<")
+import markdown
+from markdown.inlinepatterns import SimpleTagInlineProcessor
+from markdown.treeprocessors import Treeprocessor
+
+# control characters (and line separators), shown as their escape sequence: "\n" reads as \n
+_CONTROL = re.compile(r"[\x00-\x1f\x7f-\x9f\u2028\u2029]")
+# characters that start inline markup anywhere; "_" only at a word's edge (inside a word it is literal)
+_MARKUP = re.compile(r"[\\`*\[\]<>!|~#]|(?<![^\W_])_|_(?![^\W_])")
+# an "&" that starts something read as a character reference (a bare "&" is literal)
+_AMPERSAND = re.compile(r"&(?=#?[0-9A-Za-z]+;)")
+# what starts a block (list item, setext underline, numbered item) at the very beginning of a name
+_LEADING = re.compile(r"^(?:[+\-=]|\d+[.)])")
+# a character reference the serializer keeps as it is, so the browser decodes it in an attribute
+_REFERENCE = re.compile(r"&(?:#[0-9]+|#[xX][0-9a-fA-F]+|[0-9A-Za-z]+);")
 _STYLE = """
 body { font-family: system-ui, sans-serif; max-width: 1100px; margin: 2em auto; padding: 0 1em; color: #222;
        line-height: 1.45; }
@@ -37,109 +49,76 @@ code { background: #f3f3f3; padding: 0 .2em; }
 """
 
 
-def _href(url: str) -> str:
-    """The link target as an escaped attribute value; a local ``.md`` page becomes its ``.html`` page."""
-    parts = urlsplit(url)
-    if not parts.scheme and not parts.netloc and parts.path.lower().endswith(".md"):
-        url = parts._replace(path=parts.path[:-3] + ".html").geturl()
-    return html.escape(url, quote=True)
+def md_literal(value: object, code: bool = False) -> str:
+    """``value`` as Markdown that shows exactly its text: markup characters backslash-escaped, and an
+    ``&`` that would start a character reference written as ``&amp;``.
+
+    With ``code=True`` it is set as a code span when it can be (no backtick, pipe or control
+    character, no space at either end), else escaped as plain text. Control characters show as
+    their escape sequence (a newline as ``\\n``), so a name never breaks a line or a table row.
+    """
+    text = _CONTROL.sub(lambda m: m.group().encode("unicode_escape").decode("ascii"), str(value))
+    if code and text and text.strip() == text and not re.search(r"[`|]", text):
+        return f"`{text}`"
+    text = _MARKUP.sub(lambda m: "\\" + m.group(), _AMPERSAND.sub("&amp;", text))
+    return _LEADING.sub(lambda m: m.group()[:-1] + "\\" + m.group()[-1], text)
 
 
-def _spans(text: str, hrefs: list[str]) -> str:
-    """``text`` escaped, with code spans, and links as bare anchors whose targets are appended to ``hrefs``."""
-    out, end = [], 0
-    for m in _SPAN.finditer(text):
-        out.append(html.escape(text[end : m.start()], quote=False))
-        if m["code"] is not None:
-            out.append(f"<code>{html.escape(m['code'], quote=False)}</code>")
-        else:
-            hrefs.append(_href(m["url"]))
-            out.append(f"{_ANCHOR}{_spans(m['text'], hrefs)}</a>")  # link text holds no link: no brackets
-        end = m.end()
-    return "".join([*out, html.escape(text[end:], quote=False)])
+def _relative(url: str) -> bool:
+    """A relative path (or fragment or query): no scheme, no host, not rooted at ``/``."""
+    return not url.startswith(("/", "\\")) and ":" not in re.split(r"[/?#]", url, maxsplit=1)[0]
 
 
-def _inline(text: str) -> str:
-    hrefs: list[str] = []
-    out = _BOLD.sub(r"<strong>\1</strong>", _spans(text, hrefs))
-    pieces = out.split(_ANCHOR)  # hrefs go in after bold, so no ``**`` inside a URL is read as bold
-    return pieces[0] + "".join(f'<a href="{h}">{p}' for h, p in zip(hrefs, pieces[1:], strict=True))
+def _safe_target(href: str) -> str | None:
+    """The link target to keep: ``href`` if relative or http(s) (a local ``.md`` page as its ``.html``), else None.
+
+    The check reads the target as a browser will, after the character references the HTML keeps
+    are decoded and the tabs, newlines and edge spaces a browser drops are dropped.
+    """
+    seen = _REFERENCE.sub(lambda m: html.unescape(m.group()), href)
+    seen = re.sub(r"[\t\n\r]", "", seen).strip("".join(map(chr, range(33))))
+    if re.match(r"https?:", seen, re.IGNORECASE):
+        return href
+    if not _relative(seen):
+        return None
+    path, rest = re.fullmatch(r"([^?#]*)(.*)", href, re.DOTALL).groups()
+    return path[:-3] + ".html" + rest if path.lower().endswith(".md") else href
 
 
-def _cells(line: str) -> list[str]:
-    return [c.strip() for c in line.strip().strip("|").split("|")]
+class _ReportPage(Treeprocessor):
+    """Keeps only safe link targets and embeds every image (a PNG in ``figure_dir``) as a data URI."""
+
+    def __init__(self, md: markdown.Markdown, figure_dir: Path):
+        super().__init__(md)
+        self.figure_dir = figure_dir
+
+    def run(self, root: Element) -> None:
+        for anchor in root.iter("a"):
+            target = _safe_target(anchor.get("href", ""))
+            if target is None:
+                anchor.attrib.pop("href", None)
+            else:
+                anchor.set("href", target)
+        for image in root.iter("img"):
+            image.set("src", self._embedded(image.get("src", "")))
+
+    def _embedded(self, src: str) -> str:
+        folder = self.figure_dir.resolve()
+        path = (folder / src).resolve() if _relative(src) else None
+        if path is None or path.suffix.lower() != ".png" or not path.is_file() or not path.is_relative_to(folder):
+            raise ValueError(f"image {src!r} must be a PNG file in {str(self.figure_dir)!r}")
+        return "data:image/png;base64," + base64.b64encode(path.read_bytes()).decode("ascii")
 
 
-def _table(lines: list[str]) -> str:
-    head = "".join(f"<th>{_inline(c)}</th>" for c in _cells(lines[0]))
-    body = "".join("<tr>" + "".join(f"<td>{_inline(c)}</td>" for c in _cells(row)) + "</tr>" for row in lines[2:])
-    return f"<table><thead><tr>{head}</tr></thead><tbody>{body}</tbody></table>"
-
-
-def _image(alt: str, src: str, figure_dir: Path) -> str:
-    path = figure_dir / src
-    if path.suffix.lower() != ".png" or not path.is_file():
-        raise ValueError(f"image {src!r} must be a PNG file in {str(figure_dir)!r}")
-    data = base64.b64encode(path.read_bytes()).decode("ascii")
-    return f'<figure><img alt="{html.escape(alt)}" src="data:image/png;base64,{data}"></figure>'
-
-
-def _blocks(lines: list[str]) -> list[list[str]]:
-    """Group lines into blocks: consecutive lines of the same kind, split at blank lines."""
-    blocks: list[list[str]] = []
-    kind = None
-    for line in lines:
-        stripped = line.strip()
-        if not stripped:
-            kind = None
-            continue
-        this = "table" if stripped.startswith("|") else "list" if stripped.startswith("- ") else (
-            "note" if stripped.startswith(">") else "single" if stripped.startswith("#") or _IMAGE.match(stripped)
-            else "text")
-        keep = line.rstrip() if this == "list" else stripped  # list items keep their indent (nesting)
-        if this == kind and this != "single":
-            blocks[-1].append(keep)
-        else:
-            blocks.append([keep])
-        kind = this
-    return blocks
-
-
-def _list(block: list[str]) -> str:
-    """A list; indented items nest under the item before them (one level)."""
-    out, nested = ["<ul>"], False
-    for line in block:
-        indented = line.startswith(" ")
-        if indented and not nested:
-            out[-1] = out[-1].removesuffix("</li>")
-            out.append("<ul>")
-        elif nested and not indented:
-            out.append("</ul></li>")
-        nested = indented
-        out.append(f"<li>{_inline(line.strip()[2:])}</li>")
-    return "".join([*out, "</ul></li>" if nested else "", "</ul>"])
-
-
-def _block_html(block: list[str], figure_dir: Path) -> str:
-    first = block[0].lstrip()
-    heading = re.match(r"^(#{1,3})\s+(.*)$", first)
-    if heading:
-        level = len(heading.group(1))
-        return f"<h{level}>{_inline(heading.group(2))}</h{level}>"
-    image = _IMAGE.match(first)
-    if image:
-        return _image(image.group("alt"), image.group("src"), figure_dir)
-    if first.startswith("|") and len(block) >= 2:
-        return _table(block)
-    if first.startswith("- "):
-        return _list(block)
-    if first.startswith(">"):
-        return "<blockquote>" + "<br>".join(_inline(line.lstrip("> ")) for line in block) + "</blockquote>"
-    return "<p>" + " ".join(_inline(line) for line in block) + "</p>"
-
-
-def markdown_to_html(markdown: str, title: str, figure_dir: Path) -> str:
-    """One HTML page for ``markdown``; its images are read from ``figure_dir`` and embedded."""
-    body = "\n".join(_block_html(b, Path(figure_dir)) for b in _blocks(markdown.splitlines()))
+def markdown_to_html(text: str, title: str, figure_dir: Path) -> str:
+    """One HTML page for the Markdown ``text``; its images are read from ``figure_dir`` and embedded."""
+    md = markdown.Markdown(extensions=["tables"], output_format="html")
+    md.preprocessors.deregister("html_block")  # raw HTML stays text
+    md.inlinePatterns.deregister("html")
+    md.inlinePatterns.deregister("em_strong")  # emphasis: **bold** only, so a star as in "V*(s0) ... Q*" stays a star
+    md.inlinePatterns.register(SimpleTagInlineProcessor(r"(\*{2})(.+?)\1", "strong"), "strong", 60)
+    md.ESCAPED_CHARS = sorted(set(md.ESCAPED_CHARS) | set(string.punctuation))  # CommonMark: any ASCII punctuation
+    md.treeprocessors.register(_ReportPage(md, Path(figure_dir)), "qlab_report_page", -10)  # after unescaping
+    body = md.convert(text)
     return (f'<!DOCTYPE html>\n<html lang="en">\n<head>\n<meta charset="utf-8">\n<title>{html.escape(title)}</title>\n'
             f"<style>{_STYLE}</style>\n</head>\n<body>\n{body}\n</body>\n</html>\n")

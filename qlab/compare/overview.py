@@ -11,6 +11,7 @@ from __future__ import annotations
 from pathlib import Path
 
 from qlab.compare import figures
+from qlab.compare.markup import md_literal
 from qlab.compare.measures import ArmMeasures
 from qlab.compare.runs import FAILURE_RULE, REPORT_MD, Run, Study, TaskSetting, arm_sort_key, position
 from qlab.compare.stats import few_seeds_warning
@@ -42,7 +43,7 @@ def unreadable_lines(study: Study) -> list[str]:
     """A list item naming the study's folders that are not runs (empty when there are none)."""
     if not study.unreadable:
         return []
-    return [f"- Folders without a config.yaml, not read as runs: {', '.join(study.unreadable)}."]
+    return [f"- Folders without a config.yaml, not read as runs: {', '.join(map(md_literal, study.unreadable))}."]
 
 
 def figure_key(settings: list[TaskSetting]) -> str | None:
@@ -64,15 +65,16 @@ def overview_lines(
     ``measures[i]`` are the measures of ``settings[i]``; the figure across settings is saved in ``out``.
     """
     keys = sorted({k for s in settings for k in s.values})
-    shown = ", ".join(f"`{k}`" for k in keys)
-    lines = [f"# Comparison report: {study.name}", "", CAUTION, "",
+    shown = ", ".join(md_literal(k, code=True) for k in keys)
+    lines = [f"# Comparison report: {md_literal(study.name)}", "", CAUTION, "",
              f"{len(study.runs)} runs read in {len(settings)} task settings: the runs differ in {shown}. Different "
              "task settings are different problems, so each has its own full report and nothing is chosen across "
              "them (a hyperparameter sweep, if any, is resolved within each setting).", "", "## Task settings", ""]
     for s in settings:
         n_div, n_crash = failure_counts(s.study.runs)
-        lines.append(f"- [{s.folder}]({s.folder}/{REPORT_MD}): {s.label}; {len(s.study.runs)} runs "
-                     f"({', '.join(s.study.learners())}; arms {', '.join(s.study.arms())}), {n_div} diverged, "
+        learners, arms = (", ".join(map(md_literal, names)) for names in (s.study.learners(), s.study.arms()))
+        lines.append(f"- [{md_literal(s.folder)}]({s.folder}/{REPORT_MD}): {md_literal(s.label)}; "
+                     f"{len(s.study.runs)} runs ({learners}; arms {arms}), {n_div} diverged, "
                      f"{n_crash} crashed or unfinished.")
     lines += ["", "## Across task settings", "",
               f"Per learner and arm, in each task setting (columns by {shown}): the interquartile mean (IQM) of the "
@@ -81,8 +83,8 @@ def overview_lines(
               f"of the runs never reached it). Failure scores: {FAILURE_RULE}. Intervals and the rest are in each "
               "setting's report.", ""]
     lines += seed_warning({f"{i}/{lr}": ms for i, m in enumerate(measures) for lr, ms in m.items()})
-    header = "| learner | arm | " + " | ".join(f"{s.short_label}: IQM final success | {s.short_label}: median steps"
-                                               for s in settings) + " |"
+    labels = [md_literal(s.short_label) for s in settings]
+    header = "| learner | arm | " + " | ".join(f"{x}: IQM final success | {x}: median steps" for x in labels) + " |"
     lines += [header, "|---|---|" + "---|---|" * len(settings)]
     pairs = sorted({(lr, a) for m in measures for lr, ms in m.items() for a in ms},
                    key=lambda p: (p[0], arm_sort_key(p[1])))
@@ -91,7 +93,7 @@ def overview_lines(
         for m in measures:
             am = m.get(lr, {}).get(arm)
             cells += [f"{am.iqm_success.value:.2f}", median_steps(am)] if am else ["not run", "not run"]
-        lines.append(f"| {lr} | {arm} | " + " | ".join(cells) + " |")
+        lines.append(f"| {md_literal(lr)} | {md_literal(arm)} | " + " | ".join(cells) + " |")
     lines.append("")
     key = figure_key(settings)
     if key is not None:

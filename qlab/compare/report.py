@@ -18,7 +18,7 @@ import sys
 from pathlib import Path
 
 from qlab.compare import exact, figures
-from qlab.compare.markup import markdown_to_html
+from qlab.compare.markup import markdown_to_html, md_literal
 from qlab.compare.measures import (
     POTENTIAL_ARM,
     ArmContrast,
@@ -46,6 +46,11 @@ def _interval(e: Estimate, digits: int = 2) -> str:
     return f"{e.value:.{digits}f} [{e.low:.{digits}f}, {e.high:.{digits}f}]"
 
 
+def _row_start(learner: str, arm: str) -> str:
+    """The learner and arm cells that start a table row, names escaped."""
+    return f"| {md_literal(learner)} | {md_literal(arm)} |"
+
+
 def _verdict(e: Estimate) -> str:
     if e.covers_half:
         return "not distinguishable (interval covers 0.5)"
@@ -58,14 +63,14 @@ def _speed_ratio(fast: ArmMeasures, base: ArmMeasures) -> str:
     if fast_bound:
         return "reaches the threshold in at most half of its runs within the budget"
     ratio = base.median_threshold_steps() / max(fast.median_threshold_steps(), 1.0)
+    base_arm = md_literal(base.arm, code=True)
     if ratio == 1.0 and not base_bound:
-        return f"the same median steps as `{base.arm}`"
+        return f"the same median steps as {base_arm}"
     if ratio >= 1.0:
-        return f"{'at least ' if base_bound else ''}{ratio:.1f} times fewer steps than `{base.arm}` (median runs)"
+        return f"{'at least ' if base_bound else ''}{ratio:.1f} times fewer steps than {base_arm} (median runs)"
     if base_bound:
-        return (f"speed against `{base.arm}` undetermined (half or more `{base.arm}` runs never reached the "
-                "threshold)")
-    return f"{1.0 / ratio:.1f} times more steps than `{base.arm}` (median runs)"
+        return f"speed against {base_arm} undetermined (half or more {base_arm} runs never reached the threshold)"
+    return f"{1.0 / ratio:.1f} times more steps than {base_arm} (median runs)"
 
 
 def _better(e: Estimate, c: ArmContrast) -> str | None:
@@ -78,7 +83,7 @@ def _better(e: Estimate, c: ArmContrast) -> str | None:
 def _side(better: str | None, c: ArmContrast) -> str:
     if better is None:
         return "indistinguishable (interval covers 0.5)"
-    return f"`{better}` better (interval {'above' if better == c.arm.arm else 'below'} 0.5)"
+    return f"{md_literal(better, code=True)} better (interval {'above' if better == c.arm.arm else 'below'} 0.5)"
 
 
 def _reading(c: ArmContrast) -> str:
@@ -88,7 +93,8 @@ def _reading(c: ArmContrast) -> str:
         return "indistinguishable (interval covers 0.5): consistent with Wiewiora (2003)"
     if on_success == on_return:
         side = "above" if on_success == c.arm.arm else "below"
-        return f"`{on_success}` better on final success and on final discounted return (intervals {side} 0.5)"
+        return (f"{md_literal(on_success, code=True)} better on final success and on final discounted return "
+                f"(intervals {side} 0.5)")
     return f"on final success {_side(on_success, c)}; on final discounted return {_side(on_return, c)}"
 
 
@@ -112,11 +118,12 @@ def summary_lines(
                  f"(failure scores: {FAILURE_RULE}).")
     for learner, ms in measures.items():
         fast, tied = _fastest(ms)
-        ties = f" (tied on median steps with {', '.join(f'`{a}`' for a in tied)})" if tied else ""
-        head = (f"- **{learner}**: `{fast.arm}` learns fastest{ties}: median {median_steps(fast)} environment steps "
+        name, code = md_literal(learner), {a: md_literal(a, code=True) for a in ms}
+        ties = f" (tied on median steps with {', '.join(code[a] for a in tied)})" if tied else ""
+        head = (f"- **{name}**: {code[fast.arm]} learns fastest{ties}: median {median_steps(fast)} environment steps "
                 f"to a success rate >= {threshold:g} ({fast.n_censored} of {fast.n_runs} runs never reached it).")
         if figures.median_is_bound(fast):
-            head = (f"- **{learner}**: no arm reaches a success rate >= {threshold:g} in more than half of its runs "
+            head = (f"- **{name}**: no arm reaches a success rate >= {threshold:g} in more than half of its runs "
                     "within the budget.")
         lines.append(head)
         base = ms.get("none")
@@ -124,21 +131,23 @@ def summary_lines(
             if base is None or arm == "none" or m.improvement_success is None:
                 continue
             lines.append(
-                f"    - `{arm}` against `none`: {_speed_ratio(m, base)}; IQM final success {m.iqm_success.value:.2f} "
-                f"vs {base.iqm_success.value:.2f} ({m.iqm_success.value - base.iqm_success.value:+.2f}); "
-                f"P(`{arm}` beats `none` on final success) = {_interval(m.improvement_success)}: "
+                f"    - {code[arm]} against `none`: {_speed_ratio(m, base)}; IQM final success "
+                f"{m.iqm_success.value:.2f} vs {base.iqm_success.value:.2f} "
+                f"({m.iqm_success.value - base.iqm_success.value:+.2f}); "
+                f"P({code[arm]} beats `none` on final success) = {_interval(m.improvement_success)}: "
                 f"{_verdict(m.improvement_success)}.")
         if learner in contrasts:
             c = contrasts[learner]
             lines.append(
-                f"    - `{c.arm.arm}` against `{c.other.arm}`: {_speed_ratio(c.arm, c.other)}; IQM final success "
-                f"{c.arm.iqm_success.value:.2f} vs {c.other.iqm_success.value:.2f} ({c.iqm_success_difference:+.2f}); "
-                f"P(`{c.arm.arm}` beats `{c.other.arm}`) on final success {_interval(c.improvement_success)}, on "
-                f"final discounted return {_interval(c.improvement_return)}: {_reading(c)}.")
+                f"    - {code[c.arm.arm]} against {code[c.other.arm]}: {_speed_ratio(c.arm, c.other)}; IQM final "
+                f"success {c.arm.iqm_success.value:.2f} vs {c.other.iqm_success.value:.2f} "
+                f"({c.iqm_success_difference:+.2f}); "
+                f"P({code[c.arm.arm]} beats {code[c.other.arm]}) on final success {_interval(c.improvement_success)}, "
+                f"on final discounted return {_interval(c.improvement_return)}: {_reading(c)}.")
         failed = [(a, m.n_diverged, m.n_crashed) for a, m in ms.items() if m.n_diverged or m.n_crashed]
         if failed:
             lines.append("    - failures among reported runs: " + "; ".join(
-                f"`{a}` {d} diverged, {c} crashed" for a, d, c in failed) + ".")
+                f"{code[a]} {d} diverged, {c} crashed" for a, d, c in failed) + ".")
     return [*lines, ""]
 
 
@@ -150,18 +159,20 @@ def runs_lines(study: Study, selections: dict[str, Selection], requested_seeds: 
         for arm in sel.arms:
             runs = sel.runs[arm]
             n_div, n_crash = failure_counts(runs)
-            lines.append(f"| {learner} | {arm} | {len(runs)} | {', '.join(str(r.seed) for r in runs)} | "
-                         f"{sum(not r.failed for r in runs)} | {n_div} | {n_crash} | {sel.chosen[arm] or 'as run'} |")
+            lines.append(f"{_row_start(learner, arm)} {len(runs)} | "
+                         f"{', '.join(str(r.seed) for r in runs)} | {sum(not r.failed for r in runs)} | {n_div} | "
+                         f"{n_crash} | {md_literal(sel.chosen[arm]) or 'as run'} |")
     lines.append("")
     for learner, sel in selections.items():
         if sel.swept_keys:
+            keys = ", ".join(md_literal(k, code=True) for k in sel.swept_keys)
             lines.append(
-                f"- **{learner}** sweeps {', '.join(f'`{k}`' for k in sel.swept_keys)}: each arm is shown at its own "
+                f"- **{md_literal(learner)}** sweeps {keys}: each arm is shown at its own "
                 f"best setting, chosen by IQM final success on selection seeds {sel.selection_seeds}; the numbers "
                 f"here come only from the other seeds {sel.report_seeds}.")
         else:
             note = " (`--selection-seeds` unused)" if requested_seeds else ""
-            lines.append(f"- **{learner}**: no hyperparameter sweep; every seed is reported{note}.")
+            lines.append(f"- **{md_literal(learner)}**: no hyperparameter sweep; every seed is reported{note}.")
     return [*lines, *unreadable_lines(study), ""]
 
 
@@ -182,7 +193,7 @@ def against_start_lines(contrasts: dict[str, ArmContrast]) -> list[str]:
              f"| learner | P({shaped} beats {start}), final success rate | same, final discounted return | "
              f"median steps, {shaped} / {start} | speed of {shaped} | IQM final success difference | reading |",
              "|---|---|---|---|---|---|---|"]
-    lines += [f"| {lr} | {_interval(c.improvement_success)} | {_interval(c.improvement_return)} | "
+    lines += [f"| {md_literal(lr)} | {_interval(c.improvement_success)} | {_interval(c.improvement_return)} | "
               f"{median_steps(c.arm)} / {median_steps(c.other)} | {_speed_ratio(c.arm, c.other)} | "
               f"{c.arm.iqm_success.value:.2f} - {c.other.iqm_success.value:.2f} = {c.iqm_success_difference:+.2f} | "
               f"{_reading(c)} |" for lr, c in contrasts.items()]
@@ -212,7 +223,7 @@ def performance_lines(
               "|---|---|---|---|---|"]
     rows = [(lr, a, m) for lr, ms in measures.items() for a, m in ms.items()]
     for lr, a, m in rows:
-        lines.append(f"| {lr} | {a} | {m.n_runs} | {_interval(m.iqm_success)} | {_interval(m.iqm_return, 3)} |")
+        lines.append(f"{_row_start(lr, a)} {m.n_runs} | {_interval(m.iqm_success)} | {_interval(m.iqm_return, 3)} |")
     lines += ["", figures.save_figure(figures.interval_figure([
         ("IQM final success rate (fraction)", {(lr, a): m.iqm_success for lr, a, m in rows}),
         ("IQM final discounted return (unitless)", {(lr, a): m.iqm_return for lr, a, m in rows})]),
@@ -224,7 +235,7 @@ def performance_lines(
     if improvements:
         lines += ["| learner | arm | on final success rate | on final discounted return | verdict (success) |",
                   "|---|---|---|---|---|"]
-        lines += [f"| {lr} | {a} | {_interval(m.improvement_success)} | {_interval(m.improvement_return)} | "
+        lines += [f"{_row_start(lr, a)} {_interval(m.improvement_success)} | {_interval(m.improvement_return)} | "
                   f"{_verdict(m.improvement_success)} |" for lr, a, m in improvements]
         lines += ["", figures.save_figure(figures.interval_figure([
             ("P(improvement over none), final success", {(lr, a): m.improvement_success for lr, a, m in improvements}),
@@ -238,7 +249,7 @@ def performance_lines(
               "(censored) count at the budget, so a median with half or more runs censored is a lower bound.", "",
               "| learner | arm | runs | reached | censored at budget | budget | median steps |",
               "|---|---|---|---|---|---|---|"]
-    lines += [f"| {lr} | {a} | {m.n_runs} | {int(m.reached.sum())} | {m.n_censored} | {m.budget:,.0f} | "
+    lines += [f"{_row_start(lr, a)} {m.n_runs} | {int(m.reached.sum())} | {m.n_censored} | {m.budget:,.0f} | "
               f"{median_steps(m)} |" for lr, a, m in rows]
     lines += ["", "## Performance profiles", "",
               "Fraction of runs whose final success rate exceeds tau, with a 95% bootstrap band.", "",
@@ -279,7 +290,7 @@ def write_report(
     out.mkdir(parents=True, exist_ok=True)
     selections = {lr: select(study, lr, selection_seeds) for lr in study.learners()}
     measures = {lr: learner_measures(sel, threshold) for lr, sel in selections.items()}
-    lines = [f"# Comparison report: {title}", "", CAUTION, "", *(context or [])]
+    lines = [f"# Comparison report: {md_literal(title)}", "", CAUTION, "", *(context or [])]
     contrasts = potential_against_start(measures)
     lines += summary_lines(study, measures, contrasts, threshold)
     lines += seed_warning(measures)
@@ -321,8 +332,9 @@ def build_report(
                              f"{str(out / s.folder)!r}")
     measures = []
     for s in settings:
-        context = [f"Task setting: {s.label} ({len(settings)} settings in study {study.name}; overview and "
-                   f"comparison across settings: [{study.name}](../{REPORT_MD})).", ""]
+        name = md_literal(study.name)
+        context = [f"Task setting: {md_literal(s.label)} ({len(settings)} settings in study {name}; overview and "
+                   f"comparison across settings: [{name}](../{REPORT_MD})).", ""]
         measures.append(write_report(s.study, out / s.folder, f"{study.name}, {s.label}", threshold,
                                      selection_seeds, grid, diagnostics, context))
     return _write_pages(overview_lines(study, settings, measures, threshold, out), study.name, out)
