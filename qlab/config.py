@@ -12,6 +12,7 @@ from __future__ import annotations
 import dataclasses
 import importlib
 import inspect
+import re
 import types
 import typing
 from dataclasses import dataclass, field
@@ -28,7 +29,10 @@ from qlab.tasks import TASKS, LearnerSizes
 #: default of ``max_learner_mib``; also the limit for runs recorded before the setting existed
 DEFAULT_MAX_LEARNER_MIB = 2048
 
-CONFIG_DIR = Path(__file__).resolve().parent.parent / "configs"
+#: the yaml configs: qlab/configs/ in an installed wheel, else the top-level configs/ of the source tree
+#: (an editable install or a checkout); pyproject.toml ships the latter as the former
+_WHEEL_CONFIGS = Path(__file__).resolve().parent / "configs"
+CONFIG_DIR = _WHEEL_CONFIGS if _WHEEL_CONFIGS.is_dir() else _WHEEL_CONFIGS.parent.parent / "configs"
 
 
 @dataclass
@@ -130,8 +134,16 @@ def learner_schema(kind: str) -> type:
     return dataclasses.make_dataclass(f"{base.__name__}Node", fields)
 
 
+def folder_name(value: Any) -> str:
+    """``value`` made a harmless single folder name (hydra's own run and sweep folders use it, before any check)."""
+    name = re.sub(r"[^A-Za-z0-9=,._+\-]", "_", str(value)).lstrip(".")
+    return name or "_"
+
+
 def register_configs() -> ConfigStore:
-    """Register every schema with hydra's ConfigStore (idempotent)."""
+    """Register every schema with hydra's ConfigStore, and the ``qlab_folder`` resolver (idempotent)."""
+    if not OmegaConf.has_resolver("qlab_folder"):
+        OmegaConf.register_new_resolver("qlab_folder", folder_name)
     cs = ConfigStore.instance()
     cs.store(name="schema_run", node=RunConfig)
     for option, entry in TASKS.items():
@@ -243,6 +255,15 @@ def override_problem(argv: list[str]) -> str | None:
                 named = bad[0] if bad else o.input_line.split("=", 1)[-1]
                 return f"{name}={named}: no such option; choose from {options}"
             choices[name] = [c for c in chosen if c != "null"]
+        elif name == "series_name":  # checked before hydra makes its own folder under it
+            from qlab.runspec import require_name
+
+            values = list(o.sweep_string_iterator()) if o.is_sweep_override() else [o.value()]
+            try:
+                for value in values:
+                    require_name("series_name", "" if value is None else str(value))
+            except ValueError as err:
+                return f"invalid setting: {err}"
         elif "/" not in name:
             keys.append(name)
     if not keys:

@@ -25,7 +25,7 @@ from pathlib import Path
 from typing import Any
 
 from qlab.recording import MARKER, SUMMARY
-from qlab.runspec import load_config, run_digest
+from qlab.runspec import BUDGET_KEY, load_config, run_digest
 
 OWNER = "config.hash"
 REPLACED = ".replaced"
@@ -87,17 +87,22 @@ def read_summary(run_dir: Path) -> dict[str, Any]:
     return summary
 
 
-def _stored_lineage(run_dir: Path) -> str | None:
+def _stored_tree(run_dir: Path) -> dict[str, Any] | None:
+    """The resolved config a run folder was made with, or None if it cannot be read."""
+    from omegaconf import OmegaConf
+
     try:
-        return run_digest(_tree(run_dir), with_budget=False)
+        return OmegaConf.to_container(load_config(run_dir), resolve=True)  # type: ignore[return-value]
     except ValueError:
         return None
 
 
-def _tree(run_dir: Path) -> dict[str, Any]:
-    from omegaconf import OmegaConf
-
-    return OmegaConf.to_container(load_config(run_dir), resolve=True)  # type: ignore[return-value]
+def _budget_only(old: dict[str, Any] | None, stored: str, tree: dict[str, Any], budget: int,
+                 steps_done: int | None) -> bool:
+    """Whether the folder holds this very run with a smaller budget, and its checkpoint can continue to ``budget``."""
+    return (old is not None and run_digest(old) == stored
+            and run_digest(old, with_budget=False) == run_digest(tree, with_budget=False)
+            and int(old.get(BUDGET_KEY, 0)) < budget and steps_done is not None and steps_done <= budget)
 
 
 def plan(run_dir: Path, tree: dict[str, Any], budget: int, steps_done: int | None) -> Plan:
@@ -120,8 +125,7 @@ def plan(run_dir: Path, tree: dict[str, Any], budget: int, steps_done: int | Non
         except ValueError as err:
             moved = set_aside(run_dir, f"{stored}.damaged")
             return Plan("new", note=f"{err}; the damaged run was moved to {moved} and starts again")
-    same_lineage = _stored_lineage(run_dir) == run_digest(tree, with_budget=False)
-    if same_lineage and steps_done is not None and steps_done <= budget:
+    if _budget_only(_stored_tree(run_dir), stored, tree, budget, steps_done):
         (run_dir / MARKER).unlink(missing_ok=True)
         return Plan("resume", note=f"budget changed: continuing from step {steps_done:,} to {budget:,}")
     moved = set_aside(run_dir, stored or "unknown")

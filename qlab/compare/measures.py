@@ -11,7 +11,7 @@ from dataclasses import dataclass
 import numpy as np
 
 from qlab.compare import stats
-from qlab.compare.runs import START_AT_POTENTIAL_ARM, Run, eval_matrix, eval_steps
+from qlab.compare.runs import START_AT_POTENTIAL_ARM, UNFINISHED, Run, eval_matrix, eval_steps
 from qlab.compare.selection import Selection
 
 CONFIDENCE = 0.95
@@ -134,7 +134,7 @@ def arm_measures(runs: list[Run], steps: np.ndarray, threshold: float, seed: int
         arm=runs[0].arm,
         seeds=[r.seed for r in runs],
         n_diverged=sum(r.status == "diverged" for r in runs),
-        n_crashed=sum(r.status == "crashed" for r in runs),
+        n_crashed=sum(r.status in UNFINISHED for r in runs),
         success=_band(steps[keep], success[:, keep], seed),
         discounted_return=_band(steps[keep], ret[:, keep], seed),
         overestimation=_overestimation(runs, steps, seed),

@@ -13,7 +13,16 @@ from pathlib import Path
 from qlab.compare import figures
 from qlab.compare.markup import md_literal
 from qlab.compare.measures import ArmMeasures
-from qlab.compare.runs import FAILURE_RULE, REPORT_MD, Run, Study, TaskSetting, arm_sort_key, position
+from qlab.compare.runs import (
+    FAILURE_RULE,
+    REPORT_MD,
+    UNFINISHED,
+    Run,
+    Study,
+    TaskSetting,
+    arm_sort_key,
+    position,
+)
 from qlab.compare.stats import few_seeds_warning
 
 #: the figure of steps to threshold against the task setting
@@ -29,8 +38,8 @@ def median_steps(m: ArmMeasures) -> str:
 
 
 def failure_counts(runs: list[Run]) -> tuple[int, int]:
-    """How many of ``runs`` diverged and how many crashed (or never finished)."""
-    return sum(r.status == "diverged" for r in runs), sum(r.status == "crashed" for r in runs)
+    """How many of ``runs`` diverged and how many crashed, never finished or are damaged."""
+    return sum(r.status == "diverged" for r in runs), sum(r.status in UNFINISHED for r in runs)
 
 
 def seed_warning(measures: dict[str, dict[str, ArmMeasures]]) -> list[str]:
@@ -39,11 +48,20 @@ def seed_warning(measures: dict[str, dict[str, ArmMeasures]]) -> list[str]:
     return [f"> {warning}", ""] if warning else []
 
 
-def unreadable_lines(study: Study) -> list[str]:
-    """A list item naming the study's folders that are not runs (empty when there are none)."""
-    if not study.unreadable:
-        return []
-    return [f"- Folders without a config.yaml, not read as runs: {', '.join(map(md_literal, study.unreadable))}."]
+def folder_notes(study: Study) -> list[str]:
+    """List items naming folders that are not runs, damaged runs (with what is wrong) and duplicate runs."""
+    lines = []
+    if study.unreadable:
+        lines.append(f"- Folders without a readable config.yaml, not read as runs: "
+                     f"{', '.join(map(md_literal, study.unreadable))}.")
+    damaged = [r for r in study.runs if r.status == "damaged"]
+    if damaged:
+        lines.append("- Damaged runs, counted as failures from step 0 (their numbers are not used): "
+                     + "; ".join(f"{md_literal(r.name)} ({md_literal(r.damage)})" for r in damaged) + ".")
+    if study.duplicates:
+        lines.append("- The same run in more than one folder, counted once: "
+                     + "; ".join(f"{md_literal(a)} (kept: {md_literal(b)})" for a, b in study.duplicates) + ".")
+    return lines
 
 
 def figure_key(settings: list[TaskSetting]) -> str | None:
@@ -75,7 +93,7 @@ def overview_lines(
         learners, arms = (", ".join(map(md_literal, names)) for names in (s.study.learners(), s.study.arms()))
         lines.append(f"- [{md_literal(s.folder)}]({s.folder}/{REPORT_MD}): {md_literal(s.label)}; "
                      f"{len(s.study.runs)} runs ({learners}; arms {arms}), {n_div} diverged, "
-                     f"{n_crash} crashed or unfinished.")
+                     f"{n_crash} crashed, unfinished or damaged.")
     lines += ["", "## Across task settings", "",
               f"Per learner and arm, in each task setting (columns by {shown}): the interquartile mean (IQM) of the "
               f"final success rate over the reported runs, and the median environment steps to a success rate >= "
@@ -103,6 +121,6 @@ def overview_lines(
         lines.append("No figure across settings: it needs exactly one varying task key whose values are numbers or "
                      "lists of numbers (drawn at their midpoints) at distinct points.")
     lines.append("")
-    if study.unreadable:
-        lines += [*unreadable_lines(study), ""]
+    if folder_notes(study):
+        lines += [*folder_notes(study), ""]
     return lines

@@ -30,10 +30,10 @@ from qlab.compare.measures import (
 from qlab.compare.overview import (
     CAUTION,
     failure_counts,
+    folder_notes,
     median_steps,
     overview_lines,
     seed_warning,
-    unreadable_lines,
 )
 from qlab.compare.runs import FAILURE_RULE, REPORT_MD, START_AT_POTENTIAL_ARM, Study, load_study, split_by_task
 from qlab.compare.selection import Selection, parse_seeds, select
@@ -114,7 +114,7 @@ def summary_lines(
     """
     lines = ["## Summary", ""]
     n_div, n_crash = failure_counts(study.runs)
-    lines.append(f"- {len(study.runs)} runs read: {n_div} diverged, {n_crash} crashed or unfinished "
+    lines.append(f"- {len(study.runs)} runs read: {n_div} diverged, {n_crash} crashed, unfinished or damaged "
                  f"(failure scores: {FAILURE_RULE}).")
     for learner, ms in measures.items():
         fast, tied = _fastest(ms)
@@ -173,7 +173,7 @@ def runs_lines(study: Study, selections: dict[str, Selection], requested_seeds: 
         else:
             note = " (`--selection-seeds` unused)" if requested_seeds else ""
             lines.append(f"- **{md_literal(learner)}**: no hyperparameter sweep; every seed is reported{note}.")
-    return [*lines, *unreadable_lines(study), ""]
+    return [*lines, *folder_notes(study), ""]
 
 
 def against_start_lines(contrasts: dict[str, ArmContrast]) -> list[str]:

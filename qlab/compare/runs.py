@@ -4,7 +4,9 @@ A study folder holds one folder per run (names starting with ``.`` are skipped).
 
 * ``finished``: ``FINISHED`` marker present and ``summary.json`` status ``finished``;
 * ``diverged``: marker present, summary status ``diverged`` (fails from ``diverged_at_step`` on);
-* ``crashed``: no marker (killed or still running; fails after its last recorded step).
+* ``crashed``: no marker (killed or still running; fails after its last recorded step);
+* ``damaged``: marker present but ``summary.json`` unreadable, or ``metrics.csv`` not the table
+  the summary was written with (its SHA-256 differs); fails from step 0, its numbers unused.
 
 Diverged and crashed runs are failures and stay in every statistic (the report counts them).
 From its failure step on, and as its final scores, a failed run scores success 0 and, as its
@@ -21,7 +23,7 @@ Runs of different task settings (``task.*`` keys) are different problems:
 from __future__ import annotations
 
 import hashlib
-import json
+import os
 import re
 from dataclasses import dataclass, field
 from pathlib import Path
@@ -31,9 +33,12 @@ import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
 from qlab.config import flatten as flatten_config
-from qlab.recording import MARKER, SUMMARY, read_metrics
-from qlab.runspec import is_storage_key
+from qlab.recording import MARKER, METRICS, SUMMARY, file_digest, read_metrics
+from qlab.runfolder import read_summary
+from qlab.runspec import is_storage_key, load_config, run_digest
 
+#: statuses of runs that did not finish cleanly and did not diverge (counted together as crashed)
+UNFINISHED = ("crashed", "damaged")
 #: the scores a failed run loses from its failure step on (see the module docstring)
 SCORES = ("success_rate", "discounted_return")
 #: the failure-score rule in one sentence, as the report states it
@@ -84,12 +89,13 @@ class Run:
     name: str
     path: Path
     config: DictConfig
-    status: str  # "finished", "diverged" or "crashed"
+    status: str  # "finished", "diverged", "crashed" or "damaged"
     failure_step: int | None  # first environment step at which a failed run counts as failed
     final: dict[str, float]  # final evaluation (scores 0 for a failed run)
     evals: dict[str, tuple[np.ndarray, np.ndarray]] = field(repr=False)  # eval tag -> (steps, values)
     # (steps, discounted return) a failed run scores from its failure step on; None: 0 (see score_failures)
     failure_return: tuple[np.ndarray, np.ndarray] | None = field(default=None, repr=False)
+    damage: str = ""  # what is wrong with a damaged run (names the file)
     flat: dict[str, Any] = field(init=False, repr=False)
 
     def __post_init__(self) -> None:
@@ -136,11 +142,12 @@ class Run:
 
 @dataclass
 class Study:
-    """The runs of one study folder, plus folders that could not be read as runs."""
+    """The runs of one study folder, plus folders that could not be read as runs and duplicate runs."""
 
     path: Path
     runs: list[Run]
     unreadable: list[str]
+    duplicates: list[tuple[str, str]] = field(default_factory=list)  # (folder left out, folder kept)
 
     @property
     def name(self) -> str:
@@ -156,26 +163,31 @@ class Study:
         return sorted({r.seed for r in self.runs})
 
 
-def _status(path: Path) -> tuple[str, dict[str, Any] | None]:
+def _status(path: Path) -> tuple[str, dict[str, Any] | None, str]:
+    """Status, summary and (for a damaged run) what is wrong, naming the file."""
     summary_file = path / SUMMARY
-    if not (path / MARKER).exists() or not summary_file.exists():
-        return "crashed", None
-    summary = json.loads(summary_file.read_text())
-    return ("diverged" if summary.get("status") == "diverged" else "finished"), summary
+    if not (path / MARKER).exists():
+        return "crashed", None, ""
+    try:
+        summary = read_summary(path)
+    except ValueError as err:
+        return "damaged", None, str(err)
+    expected = summary.get("metrics_sha256")
+    if expected is not None and (not (path / METRICS).exists() or file_digest(path / METRICS) != expected):
+        return "damaged", None, f"{path / METRICS}: not the table {summary_file.name} was written with"
+    return ("diverged" if summary.get("status") == "diverged" else "finished"), summary, ""
 
 
 def load_run(path: Path) -> Run:
-    """Read one run folder; ``ValueError`` if it has no ``config.yaml``.
+    """Read one run folder; ``ValueError`` naming the file if its ``config.yaml`` is missing or unreadable.
 
     A failed run's discounted return is 0 here; :func:`score_failures` (called by
     :func:`load_study`) scores it against the runs of its task setting.
     """
     path = Path(path)
-    if not (path / "config.yaml").exists():
-        raise ValueError(f"run folder {str(path)!r} has no config.yaml")
-    config = OmegaConf.load(path / "config.yaml")
-    status, summary = _status(path)
-    rows = read_metrics(path)
+    config = load_config(path)
+    status, summary, damage = _status(path)
+    rows = read_metrics(path) if status != "damaged" else []
     by_tag: dict[str, list[tuple[int, float]]] = {}
     for step, tag, value in rows:
         if tag.startswith("eval/"):
@@ -190,10 +202,27 @@ def load_run(path: Path) -> Run:
         failure_step = int(at) if at is not None else int(summary.get("steps", 0))
     elif status == "crashed":
         failure_step = max((s for s, _, _ in rows), default=-1) + 1
+    elif status == "damaged":
+        failure_step = 0
     final = dict(summary["final"]) if status == "finished" else {}
     if status != "finished":
         final.update({tag: 0.0 for tag in SCORES})
-    return Run(path.name, path, config, status, failure_step, final, evals)
+    return Run(path.name, path, config, status, failure_step, final, evals,
+               damage=damage.replace(f"{path.parent}{os.sep}", ""))
+
+
+def drop_duplicates(runs: list[Run]) -> tuple[list[Run], list[tuple[str, str]]]:
+    """One run per identity (:func:`qlab.runspec.run_digest`): a finished one first, then by folder name.
+
+    The same run can sit in two folders (e.g. ``seed=0`` given once explicitly and once by
+    default); it is counted once, and each folder left out is returned with the one kept.
+    """
+    digests = {id(r): run_digest(OmegaConf.to_container(r.config, resolve=True)) for r in runs}
+    kept: dict[str, Run] = {}
+    for run in sorted(runs, key=lambda r: (r.failed, r.name)):
+        kept.setdefault(digests[id(run)], run)
+    left_out = [(r.name, kept[digests[id(r)]].name) for r in runs if kept[digests[id(r)]] is not r]
+    return [r for r in runs if kept[digests[id(r)]] is r], left_out
 
 
 def _observed_returns(run: Run) -> tuple[np.ndarray, np.ndarray]:
@@ -239,11 +268,15 @@ def load_study(folder: str | Path) -> Study:
     runs, unreadable = [], []
     for child in sorted(p for p in path.iterdir() if p.is_dir() and not p.name.startswith(".")):
         if (child / "config.yaml").exists():
-            runs.append(load_run(child))
+            try:
+                runs.append(load_run(child))
+            except ValueError:  # an unreadable config.yaml: listed, never fatal
+                unreadable.append(child.name)
         elif not (child / REPORT_MD).exists():
             unreadable.append(child.name)
+    runs, duplicates = drop_duplicates(runs)
     score_failures(runs)
-    return Study(path, runs, unreadable)
+    return Study(path, runs, unreadable, duplicates)
 
 
 def eval_matrix(runs: list[Run], tag: str, steps: np.ndarray) -> np.ndarray:
