@@ -22,6 +22,7 @@ from gymnasium.wrappers import OrderEnforcing, PassiveEnvChecker
 
 from qlab.tasks.base import ControlTask
 from qlab.tasks.batch import BatchTransition, TaskBatch, copy_mask, mask_seeds
+from qlab.validation import require_gamma, require_int
 
 #: wrappers ``gymnasium.make`` adds that change nothing a batch of qlab task copies computes
 NEUTRAL_WRAPPERS = (OrderEnforcing, PassiveEnvChecker)
@@ -73,9 +74,7 @@ class VectorCopies:
                 f"shaping {shaping!r} needs a qlab task (potential and goal distance); "
                 "other gymnasium environments take shaping 'none'"
             )
-        if int(n) != n or n < 1:
-            raise ValueError(f"n must be an integer >= 1, got {n!r}")
-        self.n = int(n)
+        self.n = require_int("n", n, 1)
         self.envs = SyncVectorEnv([make_env] * self.n, autoreset_mode=AutoresetMode.DISABLED)
         self.observation_space = self.envs.single_observation_space
         self.action_space = self.envs.single_action_space
@@ -166,8 +165,7 @@ def make_copies(
     would be skipped; any wrapper other than gymnasium's ``OrderEnforcing`` and
     ``PassiveEnvChecker`` raises ``ValueError``.
     """
-    if not 0.0 <= gamma <= 1.0:
-        raise ValueError(f"gamma must lie in [0, 1], got {gamma!r}")
+    require_gamma(gamma)
     probe = make_task()
     if not isinstance(probe.unwrapped, ControlTask):
         probe.close()

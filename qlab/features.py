@@ -25,8 +25,12 @@ import numpy as np
 import scipy.sparse as sp
 from gymnasium import spaces
 
+from qlab.validation import require_choice, require_int, require_int_list, require_positive
+
 FEATURE_KINDS = ("grid", "tiles", "rbf", "quadratic")
 TILE_OFFSETS = ("uniform", "asymmetric")
+#: What the ``bins`` setting may hold besides its integers.
+BINS_NOTE = "(one, or one per dimension)"
 
 
 @dataclass
@@ -42,21 +46,11 @@ class FeatureConfig:
     high: list[float] = field(default_factory=list)  # upper bounds per dimension; empty: the observation space's
 
     def __post_init__(self) -> None:
-        if self.features not in FEATURE_KINDS:
-            raise ValueError(f"features must be one of {list(FEATURE_KINDS)}, got {self.features!r}")
-        if self.tile_offsets not in TILE_OFFSETS:
-            raise ValueError(f"tile_offsets must be one of {list(TILE_OFFSETS)}, got {self.tile_offsets!r}")
-        if int(self.n_tilings) != self.n_tilings or self.n_tilings < 1:
-            raise ValueError(f"n_tilings must be an integer >= 1, got {self.n_tilings!r}")
-        if not (np.isfinite(self.rbf_width) and self.rbf_width > 0):
-            raise ValueError(f"rbf_width must be a finite number > 0, got {self.rbf_width!r}")
-        check_bins("bins", self.bins)
-
-
-def check_bins(name: str, bins: list[int]) -> None:
-    """Raise ``ValueError`` unless ``bins`` is a non-empty list of integers >= 1."""
-    if len(bins) == 0 or any(int(b) != b or b < 1 for b in bins):
-        raise ValueError(f"{name} must be a non-empty list of integers >= 1 (one, or one per dimension), got {bins!r}")
+        require_choice("features", self.features, FEATURE_KINDS)
+        require_choice("tile_offsets", self.tile_offsets, TILE_OFFSETS)
+        require_int("n_tilings", self.n_tilings, 1)
+        require_positive("rbf_width", self.rbf_width)
+        require_int_list("bins", self.bins, 1, BINS_NOTE)
 
 
 def per_dim(name: str, values: list[float], dim: int) -> np.ndarray:
@@ -135,8 +129,7 @@ class FeatureMap:
         self.low = np.asarray(low, dtype=np.float64)
         self.high = np.asarray(high, dtype=np.float64)
         self.dim = self.low.size
-        check_bins("bins", bins)
-        return per_dim("bins", bins, self.dim).astype(np.int64)
+        return per_dim("bins", require_int_list("bins", bins, 1, BINS_NOTE), self.dim).astype(np.int64)
 
 
 def rows_to_csr(idx: np.ndarray, val: np.ndarray, n_cols: int) -> sp.csr_array:
@@ -178,13 +171,10 @@ class TileCoder(FeatureMap):
     """
 
     def __init__(self, low: np.ndarray, high: np.ndarray, bins: list[int], n_tilings: int, offsets: str = "asymmetric"):
-        if offsets not in TILE_OFFSETS:
-            raise ValueError(f"tile_offsets must be one of {list(TILE_OFFSETS)}, got {offsets!r}")
-        if int(n_tilings) != n_tilings or n_tilings < 1:
-            raise ValueError(f"n_tilings must be an integer >= 1, got {n_tilings!r}")
+        require_choice("tile_offsets", offsets, TILE_OFFSETS)
+        self.n_tilings = require_int("n_tilings", n_tilings, 1)
         self.bins = self._set_box(low, high, bins)
         self.width = (self.high - self.low) / self.bins
-        self.n_tilings = int(n_tilings)
         step = np.ones(self.dim) if offsets == "uniform" else 2.0 * np.arange(1, self.dim + 1) - 1.0
         #: (n_tilings, d) displacement of each tiling in tile widths, in [0, 1)
         self.offsets = np.mod(np.arange(self.n_tilings)[:, None] * step[None, :] / self.n_tilings, 1.0)
@@ -212,8 +202,7 @@ class GaussianRBF(FeatureMap):
     """
 
     def __init__(self, low: np.ndarray, high: np.ndarray, bins: list[int], width: float = 1.0):
-        if not (np.isfinite(width) and width > 0):
-            raise ValueError(f"rbf_width must be a finite number > 0, got {width!r}")
+        width = require_positive("rbf_width", width)
         counts = self._set_box(low, high, bins)
         axes = [
             np.linspace(lo, hi, n) if n > 1 else np.array([0.5 * (lo + hi)])
@@ -221,7 +210,7 @@ class GaussianRBF(FeatureMap):
         ]
         self.centres = np.stack(np.meshgrid(*axes, indexing="ij"), axis=-1).reshape(-1, self.dim)
         spacing = (self.high - self.low) / np.maximum(counts - 1, 1)
-        self.sigma = float(width) * spacing
+        self.sigma = width * spacing
         self.n_features = self.centres.shape[0]
 
     def __call__(self, obs: np.ndarray) -> np.ndarray:
@@ -238,9 +227,7 @@ class QuadraticFeatures(FeatureMap):
     """
 
     def __init__(self, dim: int):
-        if int(dim) != dim or dim < 1:
-            raise ValueError(f"dim must be an integer >= 1, got {dim!r}")
-        self.dim = int(dim)
+        self.dim = require_int("dim", dim, 1)
         self._rows, self._cols = np.triu_indices(self.dim)
         self.n_quadratic = self._rows.size
         self.n_features = self.n_quadratic + self.dim + 1
@@ -275,16 +262,14 @@ class QuadraticFeatures(FeatureMap):
 def build_features(config: FeatureConfig, space: spaces.Space) -> FeatureMap:
     """The state feature map named by ``config.features`` for observations of ``space``."""
     dim = observation_dim(space)
-    if config.features == "quadratic":
+    if require_choice("features", config.features, FEATURE_KINDS) == "quadratic":
         return QuadraticFeatures(dim)
     low, high = resolve_bounds(space, config.low, config.high)
     if config.features == "grid":
         return GridBins(low, high, config.bins)
     if config.features == "tiles":
         return TileCoder(low, high, config.bins, config.n_tilings, config.tile_offsets)
-    if config.features == "rbf":
-        return GaussianRBF(low, high, config.bins, config.rbf_width)
-    raise ValueError(f"features must be one of {list(FEATURE_KINDS)}, got {config.features!r}")
+    return GaussianRBF(low, high, config.bins, config.rbf_width)
 
 
 def feature_count(config: FeatureConfig, space: spaces.Space) -> tuple[int, str]:
@@ -296,8 +281,7 @@ def feature_count(config: FeatureConfig, space: spaces.Space) -> tuple[int, str]
     dim = observation_dim(space)
     if config.features == "quadratic":
         return dim * (dim + 1) // 2 + dim + 1, "features=quadratic"
-    check_bins("bins", config.bins)
-    bins = [int(b) for b in per_dim("bins", config.bins, dim)]
+    bins = [int(b) for b in per_dim("bins", require_int_list("bins", config.bins, 1, BINS_NOTE), dim)]
     if config.features == "tiles":
         return int(config.n_tilings) * math.prod(b + 1 for b in bins), "bins, n_tilings"
     return math.prod(bins), "bins"

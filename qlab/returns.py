@@ -4,6 +4,8 @@ from __future__ import annotations
 
 import numpy as np
 
+from qlab.validation import require_gamma
+
 
 def discounted_return(rewards: np.ndarray, gamma: float, lengths: np.ndarray | None = None) -> np.ndarray:
     """Sum_t gamma**t * r[t] for each row of ``rewards``.
@@ -11,8 +13,7 @@ def discounted_return(rewards: np.ndarray, gamma: float, lengths: np.ndarray | N
     ``rewards`` has shape ``(T,)`` (one episode, returns a scalar array) or ``(N, T)``;
     ``lengths`` (shape ``(N,)``) marks where each padded row ends.
     """
-    if not 0.0 <= gamma <= 1.0:
-        raise ValueError(f"gamma must lie in [0, 1], got {gamma!r}")
+    require_gamma(gamma)
     r = np.asarray(rewards, dtype=np.float64)
     weights = gamma ** np.arange(r.shape[-1], dtype=np.float64)
     if lengths is not None:

@@ -27,6 +27,7 @@ from qlab.checkpoint import load_checkpoint
 from qlab.config import DEFAULT_MAX_LEARNER_MIB, flatten, to_container
 from qlab.learners import LEARNERS, Learner, build_learner, load_target
 from qlab.shaping import ShapedReward
+from qlab.validation import require_name
 
 #: settings (dotted keys, or a top-level key for all below it) that say where or how a run is
 #: stored, shown or executed, not what it computes. ``study_name`` is the older name of ``series_name``.
@@ -71,13 +72,6 @@ def run_digest(tree: dict[str, Any], with_budget: bool = True) -> str:
 def config_tree(cfg: DictConfig) -> dict[str, Any]:
     """The resolved config as plain nested dicts."""
     return to_container(cfg)
-
-
-def require_name(key: str, value: str) -> str:
-    """``value`` if it is one relative path component (no ``/``, not ``.``/``..``, not empty), else ``ValueError``."""
-    if not isinstance(value, str) or value in ("", ".", "..") or "/" in value or "\\" in value or "\0" in value:
-        raise ValueError(f"{key} must be a single folder name (no '/', not '', '.' or '..'), got {value!r}")
-    return value
 
 
 def run_name(overrides: list[str]) -> str:

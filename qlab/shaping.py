@@ -18,14 +18,14 @@ from typing import Any
 import gymnasium as gym
 import numpy as np
 
+from qlab.validation import require_choice, require_gamma
+
 SHAPING_VARIANTS = ("none", "potential", "progress")
 
 
 def check_variant(variant: str, allowed: tuple[str, ...] = SHAPING_VARIANTS) -> str:
     """Return ``variant`` if allowed, else raise ``ValueError`` listing the valid variants."""
-    if variant not in allowed:
-        raise ValueError(f"shaping must be one of {list(allowed)} for this task, got {variant!r}")
-    return variant
+    return require_choice("shaping", variant, allowed, note="for this task")
 
 
 def shaping_bonus(
@@ -58,10 +58,8 @@ class ShapedReward(gym.Wrapper):
         super().__init__(env)
         task = env.unwrapped
         check_variant(variant, getattr(task, "shaping_variants", ("none",)))
-        if not 0.0 <= gamma <= 1.0:
-            raise ValueError(f"gamma must lie in [0, 1], got {gamma!r}")
         self.variant = variant
-        self.gamma = float(gamma)
+        self.gamma = require_gamma(gamma)
         self.progress_scale = float(task.default_progress_scale if progress_scale is None else progress_scale)
         self._last_obs: np.ndarray | None = None
 

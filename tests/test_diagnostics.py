@@ -11,13 +11,10 @@ from qlab.compare.diagnostics import (
     approximation_error,
     best_fit,
     error_split,
-    grid_reference,
     learned_q_on_grid,
     lq_diagnostics,
     lq_error_split,
     lq_policy_loss,
-    lq_reference,
-    lq_states,
     lq_value_maps,
     policy_loss,
     value_maps,
@@ -27,6 +24,8 @@ from qlab.learners.lstdq import LSTDQ, LSTDQConfig
 from qlab.learners.qnet import QNetConfig, QNetLearner
 from qlab.learners.tabular import TabularConfig, TabularQ
 from qlab.reference import lq_solution
+from qlab.reference.dock_answers import grid_reference
+from qlab.reference.lq import lq_reference, lq_states
 from qlab.tasks.dock import Dock
 from qlab.tasks.linear_quadratic import LinearQuadratic
 
@@ -136,9 +135,30 @@ def test_network_fit_is_seeded_and_beats_a_constant(task):
     assert split.total == pytest.approx(rms(learned_q_on_grid(one, small) - small.q_star), rel=1e-12)
 
 
-def test_error_split_rejects_an_unknown_learner_class(ref):
-    with pytest.raises(ValueError, match="learner must be"):
+def test_error_split_names_the_missing_capability(ref):
+    # NodeTable answers q_values only: no fit_function_class, so no best fit and no split
+    with pytest.raises(ValueError, match=r"learner must offer fit_function_class.* got NodeTable"):
         error_split(NodeTable(ref, ref.q_star), ref)
+
+
+class FittedNodeTable(NodeTable):
+    """NodeTable with the fit capability of a one-hot table on the grid nodes (Q* itself is in its class)."""
+
+    def __init__(self, ref, q: np.ndarray, linear: bool):
+        super().__init__(ref, q)
+        if linear:
+            self.linear_features = object()  # only its presence is read by the error split
+
+    def fit_function_class(self, observations, targets, steps=None):
+        return np.asarray(targets)
+
+
+@pytest.mark.parametrize("linear", [True, False])
+def test_error_split_follows_the_capabilities_not_the_class(ref, linear):
+    q = ref.q_star + 0.1
+    split = error_split(FittedNodeTable(ref, q, linear), ref)
+    assert split.approximation == 0.0 and split.total == pytest.approx(0.1, rel=1e-9)
+    assert split.remainder == (pytest.approx(0.1, rel=1e-9) if linear else None)
 
 
 # ------------------------------------------------------------------------------------- policy loss, value maps
@@ -209,10 +229,20 @@ def test_lq_diagnostics_of_a_perturbed_q_function():
     assert result.cost_ratio > 1.0
 
 
-def test_lq_diagnostics_needs_a_continuous_lstdq(task):
+def test_lq_diagnostics_need_a_quadratic_head(task):
     learner = TabularQ(task.observation_space, task.action_space, TabularConfig(bins=[4]), seed=0)
-    with pytest.raises(ValueError, match="learner must be an LSTDQ"):
+    with pytest.raises(ValueError, match=r"learner must offer a quadratic_head.* got TabularQ without one"):
         lq_diagnostics(learner, np.eye(2), np.ones((2, 1)), np.eye(2), np.eye(1), 0.9)
+    lq = lq_task(None)
+    discrete = LSTDQ(task.observation_space, task.action_space, LSTDQConfig(features="tiles", bins=[4]), seed=0)
+    assert discrete.quadratic_head is None and discrete.linear_features is not None
+    for check in (lq_policy_loss, lq_value_maps, lq_error_split):
+        with pytest.raises(ValueError, match="quadratic_head"):
+            check(discrete, lq_reference(lq, GAMMA_LQ))
+    continuous = lq_learner(lq, GAMMA_LQ)
+    assert continuous.quadratic_head is continuous.head and continuous.linear_features is None
+    with pytest.raises(ValueError, match="finite action set"):
+        continuous.fit_function_class(np.zeros((3, 2)), np.zeros((3, 1)))
 
 
 def riccati(lq: LinearQuadratic, gamma: float) -> tuple[np.ndarray, np.ndarray]:

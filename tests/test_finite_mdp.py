@@ -245,9 +245,9 @@ def _valid_mdp() -> tuple[np.ndarray, np.ndarray]:
         (np.tile([[[2.0, -1.0, 0.0]]], (2, 3, 1)), np.zeros((3, 2)), 0.9, "non-negative"),
         (_valid_mdp()[0], np.zeros((2, 3)), 0.9, r"R must have shape \(S, A\) = \(3, 2\)"),
         (_valid_mdp()[0], np.full((3, 2), np.nan), 0.9, "R must be finite"),
-        (_valid_mdp()[0], np.zeros((3, 2)), 1.5, r"gamma must be a number in \[0, 1\]"),
-        (_valid_mdp()[0], np.zeros((3, 2)), -0.1, r"gamma must be a number in \[0, 1\]"),
-        (_valid_mdp()[0], np.zeros((3, 2)), float("nan"), r"gamma must be a number in \[0, 1\]"),
+        (_valid_mdp()[0], np.zeros((3, 2)), 1.5, r"gamma must lie in \[0, 1\]"),
+        (_valid_mdp()[0], np.zeros((3, 2)), -0.1, r"gamma must lie in \[0, 1\]"),
+        (_valid_mdp()[0], np.zeros((3, 2)), float("nan"), r"gamma must lie in \[0, 1\]"),
         ([sp.csr_array(np.eye(3)), sp.csr_array(np.eye(2))], np.zeros((3, 2)), 0.9, r"every P\[a\] must have shape"),
         ([sp.csr_array(np.eye(3)), np.eye(3)], np.zeros((3, 2)), 0.9, "mixes sparse and dense"),
         ([sp.csr_array(np.eye(3)), sp.csr_array(0.5 * np.eye(3))], np.zeros((3, 2)), 0.9, r"P\[1\] row 0 sums"),
@@ -262,9 +262,9 @@ def test_bad_inputs_raise_value_error(P, R, gamma, message):
 
 def test_bad_solver_settings_and_policies_raise_value_error():
     P, R = _valid_mdp()
-    with pytest.raises(ValueError, match="tol must be a positive number"):
+    with pytest.raises(ValueError, match="tol must be a finite number > 0"):
         value_iteration(P, R, 0.9, tol=0.0)
-    with pytest.raises(ValueError, match="max_iter must be a positive integer"):
+    with pytest.raises(ValueError, match="max_iter must be an integer >= 1"):
         value_iteration(P, R, 0.9, max_iter=0)
     with pytest.raises(ValueError, match=r"policy row 1 sums to .* must sum to 1"):
         evaluate_policy(P, R, 0.9, np.array([[0.5, 0.5], [0.5, 0.2], [1.0, 0.0]]))

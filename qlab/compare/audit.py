@@ -20,9 +20,10 @@ from typing import Any
 
 import numpy as np
 
-from qlab.reference.dock_grid import DockGrid
-from qlab.reference.finite_mdp import TransitionModel, evaluate_policy, greedy_policy, value_iteration
+from qlab.reference.dock_answers import grid_reference
+from qlab.reference.finite_mdp import evaluate_policy, greedy_policy, value_iteration
 from qlab.tasks.dock import Dock
+from qlab.validation import require_gamma
 
 #: Phi at every terminal state, the failure terminal included (see qlab.shaping).
 TERMINAL_POTENTIAL = 0.0
@@ -95,18 +96,14 @@ def shaping_audit(
     Issues a ``UserWarning`` (and fills ``report.trap.warning``) when the potential has a trap.
     ``gamma`` must lie in (0, 1): at 1 a reward cycle of the progress bonus is worth without bound.
     """
-    if not 0.0 < gamma < 1.0:
-        raise ValueError(f"gamma must lie in (0, 1) for the shaping audit, got {gamma!r}")
-    grid = DockGrid(task, n_position, n_velocity, cache=cache)
-    model = TransitionModel.build(grid.transitions)
-    base_reward = grid.rewards("none", gamma)
-    v_star = value_iteration(model, base_reward, gamma).max(axis=1)
-    start = grid.start_weights()
+    require_gamma(gamma, above_zero=True, below_one=True, note="for the shaping audit")
+    ref = grid_reference(task, gamma, "none", n_position, n_velocity, cache=cache)
+    grid, v_star, start = ref.grid, ref.v_star_base, ref.start_weights
     scale = float(task.default_progress_scale if progress_scale is None else progress_scale)
     losses = []
     for variant in task.shaping_variants:
-        q_variant = value_iteration(model, grid.rewards(variant, gamma, scale), gamma)
-        v_pi = evaluate_policy(model, base_reward, gamma, greedy_policy(q_variant))
+        q_variant = value_iteration(ref.model, grid.rewards(variant, gamma, scale), gamma)
+        v_pi = evaluate_policy(ref.model, ref.base_reward, gamma, greedy_policy(q_variant))
         gap = v_star - v_pi
         losses.append(
             VariantLoss(

@@ -1,7 +1,10 @@
 """Where a learned Q-function goes wrong, measured against the exact Dock grid model (and LQ closed form).
 
-* :func:`grid_reference`: Q* of one shaping variant (and of the task's own reward) on a
-  :class:`~qlab.reference.dock_grid.DockGrid`, computed once and shared by many learners.
+The exact answers come from :mod:`qlab.reference` (:func:`~qlab.reference.dock_answers.grid_reference`,
+:func:`~qlab.reference.lq.lq_reference`); this module compares learners with them. It asks a
+learner only for the protocol and its optional capabilities (``linear_features``,
+``fit_function_class``, ``quadratic_head``: see :mod:`qlab.learners.protocol`), never for its class.
+
 * :func:`learned_q_on_grid`: the learner's Q at the observations of the grid nodes.
 * :func:`value_maps`: learned V, V* and where the greedy action is not optimal, as
   ``(n_position, n_velocity)`` pictures.
@@ -9,9 +12,9 @@
 * :func:`error_split`: RMS error of Q against Q* split into approximation (the best fit of Q*
   inside the learner's function class, :func:`approximation_error`) and what learning left on top.
 * :func:`lq_diagnostics`: gain, Q-matrix and cost of an LSTD-Q learner on the linear-quadratic task.
-* :func:`lq_reference`, :func:`lq_value_maps`, :func:`lq_policy_loss`, :func:`lq_error_split`: the same
-  maps, policy loss and error split for the linear-quadratic task against the closed form, on a
-  uniform grid of states over a box (:func:`lq_states`).
+* :func:`lq_value_maps`, :func:`lq_policy_loss`, :func:`lq_error_split`: the same maps, policy
+  loss and error split for the linear-quadratic task against the closed form, on a uniform grid
+  of states over a box (:func:`~qlab.reference.lq.lq_states`).
 
 All grid quantities are over the live grid nodes (not the two absorbing nodes), every node and
 action weighted alike. Learners always see observations, ``task.observe(node)``, never raw states.
@@ -24,88 +27,16 @@ from typing import Any
 
 import numpy as np
 import scipy.linalg
-import torch
 from numpy.typing import ArrayLike
 
-from qlab.learners.linear import LinearQ, least_squares_weights
-from qlab.learners.lstdq import LSTDQ
-from qlab.learners.qnet import QNetLearner, build_mlp
-from qlab.reference.dock_grid import DockGrid
-from qlab.reference.finite_mdp import TransitionModel, evaluate_policy, value_iteration
-from qlab.reference.lq import (
-    check_lq_matrices,
-    cost_to_go_matrix,
-    gain_q_matrix,
-    lq_solution,
-    noise_offset,
-    quadratic_cost,
-)
-from qlab.tasks.dock import Dock
-from qlab.tasks.linear_quadratic import LinearQuadratic
+from qlab.learners.protocol import QuadraticHead
+from qlab.reference.dock_answers import GridReference
+from qlab.reference.finite_mdp import evaluate_policy
+from qlab.reference.lq import LQReference, check_lq_matrices, cost_to_go_matrix, gain_q_matrix, lq_solution, lq_states
+from qlab.validation import require_int, require_positive
 
 #: An action counts as optimal when its Q* is within this much of V* (times max(1, max |Q*|)).
 TIE_TOLERANCE = 1e-9
-
-#: Supervised fit of a Q-network's architecture to Q*: full-batch Adam steps, step size, seed.
-NETWORK_FIT_STEPS = 2_000
-NETWORK_FIT_LEARNING_RATE = 1e-3
-NETWORK_FIT_SEED = 0
-
-
-@dataclass(frozen=True)
-class GridReference:
-    """Exact answers on a Dock grid for one shaping variant; arrays over live nodes unless noted."""
-
-    grid: DockGrid
-    model: TransitionModel
-    variant: str
-    gamma: float
-    observations: np.ndarray  # (n_grid, obs_dim): what a learner sees at each node
-    q_star: np.ndarray  # (n_grid, A): Q* of the variant's rewards (what a learner of that variant estimates)
-    q_star_base: np.ndarray  # (n_grid, A): Q* of the task's own reward
-    base_reward: np.ndarray  # (n_states, A): the task's own reward, absorbing nodes included
-    v_star_base: np.ndarray  # (n_states,): V* of the task's own reward, absorbing nodes included
-    start_weights: np.ndarray  # (n_states,): the start distribution on the nodes
-
-    @property
-    def v_star(self) -> np.ndarray:
-        """V* of the variant's rewards at the live nodes, ``(n_grid,)``."""
-        return self.q_star.max(axis=1)
-
-    @property
-    def optimal_start_value(self) -> float:
-        """V*(s0) of the task's own reward under the start distribution."""
-        return float(self.start_weights @ self.v_star_base)
-
-
-def grid_reference(
-    task: Dock,
-    gamma: float,
-    variant: str,
-    n_position: int,
-    n_velocity: int,
-    progress_scale: float | None = None,
-    cache: bool | str = False,
-) -> GridReference:
-    """Solve the Dock grid model for ``variant`` and for the task's own reward (value iteration)."""
-    grid = DockGrid(task, n_position, n_velocity, cache=cache)
-    model = TransitionModel.build(grid.transitions)
-    base_reward = grid.rewards("none", gamma)
-    q_base = value_iteration(model, base_reward, gamma)
-    rewards = grid.rewards(variant, gamma, progress_scale)  # checks the variant
-    q_variant = q_base if variant == "none" else value_iteration(model, rewards, gamma)
-    return GridReference(
-        grid=grid,
-        model=model,
-        variant=variant,
-        gamma=float(gamma),
-        observations=task.observe(grid.nodes),
-        q_star=q_variant[: grid.n_grid],
-        q_star_base=q_base[: grid.n_grid],
-        base_reward=base_reward,
-        v_star_base=q_base.max(axis=1),
-        start_weights=grid.start_weights(),
-    )
 
 
 def learned_q_on_grid(learner: Any, ref: GridReference) -> np.ndarray:
@@ -164,59 +95,29 @@ def policy_loss(learner: Any, ref: GridReference) -> float:
     return float(ref.start_weights @ (ref.v_star_base - v_pi))
 
 
-def _linear_features(learner: Any):
-    """The state feature map of a learner linear in its weights (one weight vector per action), else None."""
-    if isinstance(learner, LinearQ):
-        return learner.features
-    if isinstance(learner, LSTDQ) and not learner.continuous:
-        return learner.head.features
-    return None
-
-
-def best_fit(learner: Any, ref: GridReference, network_steps: int = NETWORK_FIT_STEPS) -> np.ndarray:
+def best_fit(learner: Any, ref: GridReference, network_steps: int | None = None) -> np.ndarray:
     """The best fit of ``ref.q_star`` inside the learner's function class, ``(n_grid, A)``.
 
-    Uses the learner's feature map or architecture, never its weights, so it depends on the
-    learner's class and config only. Linear classes (TabularQ, LinearQ, discrete LSTDQ): least
-    squares per action over the grid nodes, uniform weights; for a table, the mean of Q* over
-    the nodes in each cell. QNetLearner: the same network architecture trained on Q* by
-    full-batch Adam (``network_steps`` steps, fixed seed, one torch thread): an upper bound of the
-    best fit, as training need not reach the optimum.
+    Asks the learner's ``fit_function_class`` (:mod:`qlab.learners.protocol`), which uses its
+    feature map or architecture, never its weights, so the fit depends on the learner's class and
+    config only. Linear classes (TabularQ, LinearQ, discrete LSTDQ): least squares per action over
+    the grid nodes, uniform weights; for a table, the mean of Q* over the nodes in each cell.
+    QNetLearner: the same network architecture trained on Q* by full-batch Adam
+    (``network_steps`` steps, None: the learner's default; fixed seed, one torch thread): an upper
+    bound of the best fit, as training need not reach the optimum.
     """
-    features = _linear_features(learner)
-    if features is not None:
-        weights = least_squares_weights(features, ref.observations, ref.q_star)
-        return features.sparse(ref.observations) @ weights
-    if isinstance(learner, QNetLearner):
-        return _network_fit(learner, ref, network_steps)
-    raise ValueError(
-        "learner must be a TabularQ, LinearQ, LSTDQ (discrete actions) or QNetLearner for a best fit, "
-        f"got {type(learner).__name__}"
-    )
+    fit = getattr(learner, "fit_function_class", None)
+    if fit is None:
+        raise ValueError(
+            "learner must offer fit_function_class(observations, targets, steps) for a best fit in its function "
+            f"class (see qlab.learners.protocol), got {type(learner).__name__} without it"
+        )
+    if network_steps is not None:
+        require_int("network_steps", network_steps, 1)
+    return fit(ref.observations, ref.q_star, network_steps)
 
 
-def _network_fit(learner: QNetLearner, ref: GridReference, steps: int) -> np.ndarray:
-    if int(steps) != steps or steps < 1:
-        raise ValueError(f"network_steps must be an integer >= 1, got {steps!r}")
-    threads = torch.get_num_threads()
-    torch.set_num_threads(1)
-    try:
-        generator = torch.Generator().manual_seed(NETWORK_FIT_SEED)
-        net = build_mlp(learner.obs_dim, learner.config.hidden_sizes, learner.n_actions, generator)
-        x = torch.from_numpy(np.asarray(ref.observations, dtype=np.float32))
-        y = torch.from_numpy(ref.q_star.astype(np.float32))
-        optimizer = torch.optim.Adam(net.parameters(), lr=NETWORK_FIT_LEARNING_RATE)
-        for _ in range(int(steps)):
-            optimizer.zero_grad(set_to_none=True)
-            torch.nn.functional.mse_loss(net(x), y).backward()
-            optimizer.step()
-        with torch.no_grad():
-            return net(x).double().numpy()
-    finally:
-        torch.set_num_threads(threads)
-
-
-def approximation_error(learner: Any, ref: GridReference, network_steps: int = NETWORK_FIT_STEPS) -> float:
+def approximation_error(learner: Any, ref: GridReference, network_steps: int | None = None) -> float:
     """RMS distance from Q* to its best fit in the learner's function class (see :func:`best_fit`).
 
     Independent of the learner's weights and seed: compute it once per class and config.
@@ -244,7 +145,7 @@ def error_split(learner: Any, ref: GridReference, approximation: float | None = 
     """
     total = _rms(learned_q_on_grid(learner, ref) - ref.q_star)
     approx = approximation_error(learner, ref) if approximation is None else float(approximation)
-    linear = _linear_features(learner) is not None
+    linear = getattr(learner, "linear_features", None) is not None  # Q in the span of its features
     remainder = float(np.sqrt(max(total**2 - approx**2, 0.0))) if linear else None
     return ErrorSplit(total=total, approximation=approx, remainder=remainder)
 
@@ -261,13 +162,15 @@ LQ_ACTION_POINTS = 9
 LQ_ACTION_HALF_WIDTH = 3.0
 
 
-def _quadratic_head(learner: Any) -> Any:
-    """The quadratic form of a continuous-action LSTD-Q learner, else ``ValueError``."""
-    if not (isinstance(learner, LSTDQ) and learner.continuous):
+def _quadratic_head(learner: Any) -> QuadraticHead:
+    """The learner's ``quadratic_head`` (:mod:`qlab.learners.protocol`), else ``ValueError``."""
+    head = getattr(learner, "quadratic_head", None)
+    if head is None:
         raise ValueError(
-            f"learner must be an LSTDQ with continuous actions (quadratic features), got {type(learner).__name__}"
+            "learner must offer a quadratic_head (a quadratic Q of [x; u], e.g. LSTDQ with continuous actions and "
+            f"quadratic features; see qlab.learners.protocol), got {type(learner).__name__} without one"
         )
-    return learner.head
+    return head
 
 
 @dataclass(frozen=True)
@@ -289,7 +192,7 @@ def lq_diagnostics(learner: Any, A: ArrayLike, B: ArrayLike, Q: ArrayLike, R: Ar
     head = _quadratic_head(learner)
     A, B, Q, R = check_lq_matrices(A, B, Q, R)
     K_star, H_star = lq_solution(A, B, Q, R, gamma)
-    M, _, _ = head.quad.to_matrix(head.weights)
+    M, _, _ = head.form()
     if M.shape != H_star.shape:
         raise ValueError(f"the learner's Q matrix is {M.shape}, but A, B give a {H_star.shape} Q matrix")
     K = head.gain
@@ -308,71 +211,7 @@ def lq_diagnostics(learner: Any, A: ArrayLike, B: ArrayLike, Q: ArrayLike, R: Ar
     )
 
 
-@dataclass(frozen=True)
-class LQReference:
-    """Closed-form answers of a linear-quadratic task at one discount (matrices in cost form)."""
-
-    A: np.ndarray
-    B: np.ndarray
-    Q: np.ndarray
-    R: np.ndarray
-    gamma: float
-    noise_cov: np.ndarray | None  # W, None when noise-free
-    gain: np.ndarray  # K* (m, n): u*(x) = -K* x
-    q_matrix: np.ndarray  # H* (n+m, n+m): Q*(x, u) = -[x; u]' H* [x; u] - offset
-    cost_to_go: np.ndarray  # P* (n, n): V*(x) = -x' P* x - offset
-    offset: float  # gamma / (1 - gamma) tr(P* W) of the process noise, 0 without noise
-    start_moment: np.ndarray  # E[x0 x0'] (n, n) under the task's start distribution
-
-    def v_star(self, x: np.ndarray) -> np.ndarray:
-        """V*(x) of the task's reward for a batch of states ``(N, n)`` -> ``(N,)``."""
-        return -np.einsum("ni,ij,nj->n", x, self.cost_to_go, x) - self.offset
-
-    def q_star(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
-        """Q*(x, u) of the task's reward for a batch, ``(N,)``."""
-        return -quadratic_cost(self.q_matrix, x, u) - self.offset
-
-
-def lq_reference(task: LinearQuadratic, gamma: float) -> LQReference:
-    """Riccati solution of ``task`` at discount ``gamma`` (``qlab.reference.lq``), noise constant and start moment.
-
-    The start state is uniform in ``[start_low, start_high]``: ``E[x0 x0'] = mu mu' + diag((high - low)^2 / 12)``.
-    With process noise, ``gamma`` must be < 1 (the noise cost diverges at 1).
-    """
-    A, B, Q, R = check_lq_matrices(task.A, task.B, task.Q, task.R)
-    K, H = lq_solution(A, B, Q, R, gamma)
-    P = cost_to_go_matrix(A, B, Q, R, gamma)
-    W = task.noise_cov
-    mid = 0.5 * (task.start_low + task.start_high)
-    return LQReference(
-        A=A, B=B, Q=Q, R=R, gamma=float(gamma), noise_cov=W, gain=K, q_matrix=H, cost_to_go=P,
-        offset=0.0 if W is None else noise_offset(P, W, gamma),
-        start_moment=np.outer(mid, mid) + np.diag((task.start_high - task.start_low) ** 2 / 12.0),
-    )
-
-
-def _check_box(half_width: float, n_points: int, what: str) -> None:
-    if not (np.isfinite(half_width) and half_width > 0):
-        raise ValueError(f"{what} half width must be a finite number > 0, got {half_width!r}")
-    if int(n_points) != n_points or n_points < 2:
-        raise ValueError(f"{what} points must be an integer >= 2, got {n_points!r}")
-
-
-def lq_states(n_state: int, half_width: float = LQ_BOX_HALF_WIDTH,
-              n_points: int = LQ_GRID_POINTS) -> tuple[np.ndarray, np.ndarray]:
-    """A uniform grid over ``[-half_width, half_width]^n_state``: the axis ``(k,)`` and the states ``(k^n, n)``.
-
-    ``k = n_points`` for one or two dimensions, else ``max(2, round(n_points^(2 / n_state)))``; the
-    states are in C order (the last dimension varies fastest).
-    """
-    _check_box(half_width, n_points, "state grid")
-    per_axis = int(n_points) if n_state <= 2 else max(2, round(n_points ** (2.0 / n_state)))
-    axis = np.linspace(-half_width, half_width, per_axis)
-    mesh = np.meshgrid(*[axis] * n_state, indexing="ij")
-    return axis, np.stack([g.ravel() for g in mesh], axis=1)
-
-
-def _learned_control(head: Any, x: np.ndarray) -> np.ndarray:
+def _learned_control(head: QuadraticHead, x: np.ndarray) -> np.ndarray:
     """The learner's greedy control ``u = -K x + k`` without clipping (the closed form has no bounds)."""
     return head.offset - x @ head.gain.T
 
@@ -442,7 +281,8 @@ def lq_error_split(learner: Any, ref: LQReference, half_width: float = LQ_BOX_HA
     points, so it shows round-off only) and the remainder is sqrt(total^2 - approximation^2).
     """
     head = _quadratic_head(learner)
-    _check_box(action_half_width, n_actions, "action grid")
+    require_positive("action grid half width", action_half_width)
+    require_int("action grid points", n_actions, 2)
     _, x = lq_states(ref.A.shape[0], half_width, n_points)
     m = ref.B.shape[1]
     _, shifts = lq_states(1, action_half_width, n_actions)

@@ -25,6 +25,8 @@ from qlab.compare.runs import Run, Study
 from qlab.compare.selection import Selection
 from qlab.compare.stats import iqm
 from qlab.learners import Learner
+from qlab.reference.dock_answers import GridReference, grid_reference
+from qlab.reference.lq import LQReference, lq_reference
 from qlab.runspec import CHECKPOINT, make_task, restore_learner
 
 DOCK_ID = "qlab/Dock-v0"
@@ -86,12 +88,12 @@ def _cell(values: list[float]) -> str:
 
 def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[str]:
     """Maps, error split and policy loss of the reported Dock runs, against the grid model."""
-    refs: dict[tuple, diagnostics.GridReference] = {}
+    refs: dict[tuple, GridReference] = {}
 
-    def reference(run: Run, task: Any) -> diagnostics.GridReference:
+    def reference(run: Run, task: Any) -> GridReference:
         key = (*_task_key(run), run.variant, _scale(run))
         if key not in refs:
-            refs[key] = diagnostics.grid_reference(task, float(run.flat["gamma"]), run.variant, grid, grid, _scale(run))
+            refs[key] = grid_reference(task, float(run.flat["gamma"]), run.variant, grid, grid, _scale(run))
         return refs[key]
 
     lines = [f"Exact reference: the Dock grid model ({grid} x {grid} nodes), solved by value iteration. Each learner "
@@ -165,7 +167,7 @@ def lq_lines(selections: dict[str, Selection], out: Path) -> list[str]:
              "| learner | arm | runs | gain error | Q-matrix error | cost ratio | unstable gains | total RMS error | "
              "approximation RMS | remainder RMS | policy loss |",
              "|---|---|---|---|---|---|---|---|---|---|---|"]
-    refs: dict[str, diagnostics.LQReference] = {}
+    refs: dict[str, LQReference] = {}
     skipped, images = [], []
     for learner_kind, sel in selections.items():
         maps = []
@@ -181,7 +183,7 @@ def lq_lines(selections: dict[str, Selection], out: Path) -> list[str]:
                     rows.append(diagnostics.lq_diagnostics(learner, task.A, task.B, task.Q, task.R, gamma))
                     key = repr(_task_key(run))
                     if key not in refs:
-                        refs[key] = diagnostics.lq_reference(task, gamma)
+                        refs[key] = lq_reference(task, gamma)
                     ref = refs[key]
                     splits.append(diagnostics.lq_error_split(learner, ref))
                     losses.append(diagnostics.lq_policy_loss(learner, ref))

@@ -38,6 +38,7 @@ from qlab.compare.overview import (
 from qlab.compare.runs import FAILURE_RULE, REPORT_MD, START_AT_POTENTIAL_ARM, Study, load_study, split_by_task
 from qlab.compare.selection import Selection, parse_seeds, select
 from qlab.recording import atomic_write_text
+from qlab.validation import require_int, require_within
 
 REPORT_HTML = "report.html"
 
@@ -313,10 +314,8 @@ def build_report(
     With several task settings, each gets a full report in a subfolder of ``out_dir`` named after
     it, and the top-level report links them and compares the arms across settings.
     """
-    if not 0.0 <= threshold <= 1.0:
-        raise ValueError(f"threshold must lie in [0, 1] (a success rate), got {threshold!r}")
-    if int(grid) != grid or grid < 2:
-        raise ValueError(f"grid must be an integer >= 2 (nodes per axis), got {grid!r}")
+    require_within("threshold", threshold, 0.0, 1.0, note="(a success rate)")
+    require_int("grid", grid, 2, note="(nodes per axis)")
     study = load_study(study_dir)
     if not study.runs:
         raise ValueError(f"study folder {str(study.path)!r} holds no run folders (with a config.yaml)")

@@ -19,6 +19,8 @@ from collections.abc import Callable
 import numpy as np
 from scipy.stats import rankdata
 
+from qlab.validation import require_int, require_within
+
 # Largest resampled array (elements) built at once; bigger bootstraps are evaluated in chunks.
 _MAX_RESAMPLED_ELEMENTS = 1 << 23
 
@@ -37,16 +39,6 @@ def iqm(x: np.ndarray, axis: int = -1) -> np.ndarray | float:
     cut = n // 4
     kept = np.moveaxis(np.sort(a, axis=axis), axis, 0)[cut : n - cut]
     return kept.mean(axis=0)
-
-
-def _check_confidence(confidence: float) -> None:
-    if not 0.0 < confidence < 1.0:
-        raise ValueError(f"confidence must lie in the open interval (0, 1), got {confidence!r}")
-
-
-def _check_resamples(n_resamples: int) -> None:
-    if int(n_resamples) != n_resamples or n_resamples < 1:
-        raise ValueError(f"n_resamples must be an integer >= 1, got {n_resamples!r}")
 
 
 def _check_runs(name: str, values: np.ndarray, ndim: int | tuple[int, ...] = 1) -> np.ndarray:
@@ -85,8 +77,8 @@ def bootstrap_ci(
     Returns ``(low, high)``, each of shape ``()`` or ``(T,)``.
     """
     data = _check_runs("samples", samples, (1, 2))
-    _check_confidence(confidence)
-    _check_resamples(n_resamples)
+    require_within("confidence", confidence, 0.0, 1.0, open_low=True, open_high=True)
+    require_int("n_resamples", n_resamples, 1)
     n = data.shape[0]
     index = np.random.default_rng(seed).integers(0, n, size=(n, int(n_resamples)))
     chunk = max(1, _MAX_RESAMPLED_ELEMENTS // data.size)
@@ -126,8 +118,8 @@ def probability_of_improvement_ci(
     a, b = _check_runs("x", x), _check_runs("y", y)
     _check_finite("x", a)
     _check_finite("y", b)
-    _check_confidence(confidence)
-    _check_resamples(n_resamples)
+    require_within("confidence", confidence, 0.0, 1.0, open_low=True, open_high=True)
+    require_int("n_resamples", n_resamples, 1)
     rng = np.random.default_rng(seed)
     ia = rng.integers(0, a.size, size=(int(n_resamples), a.size))
     ib = rng.integers(0, b.size, size=(int(n_resamples), b.size))
@@ -184,10 +176,8 @@ def few_seeds_warning(n: int, minimum: int = 10) -> str | None:
     Agarwal et al. (2021) caution that percentile bootstrap intervals from few runs under-cover
     (from memory); the default ``minimum = 10`` is a rule of thumb (common practice, no source).
     """
-    if int(n) != n or n < 0:
-        raise ValueError(f"n must be a non-negative integer, got {n!r}")
-    if int(minimum) != minimum or minimum < 1:
-        raise ValueError(f"minimum must be an integer >= 1, got {minimum!r}")
+    require_int("n", n, 0)
+    require_int("minimum", minimum, 1)
     if n >= minimum:
         return None
     return (

@@ -12,6 +12,7 @@ from typing import Any
 import gymnasium as gym
 
 from qlab.learners.protocol import Learner, Transitions
+from qlab.validation import require_choice
 
 LEARNERS: dict[str, tuple[str, str]] = {
     "tabular": ("qlab.learners.tabular:TabularQ", "qlab.learners.tabular:TabularConfig"),
@@ -28,9 +29,7 @@ def load_target(target: str) -> Any:
 
 
 def _entry(kind: str) -> tuple[str, str]:
-    if kind not in LEARNERS:
-        raise ValueError(f"learner must be one of {sorted(LEARNERS)}, got {kind!r}")
-    return LEARNERS[kind]
+    return LEARNERS[require_choice("learner", kind, sorted(LEARNERS))]
 
 
 def learner_config_class(kind: str) -> type:

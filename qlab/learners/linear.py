@@ -42,6 +42,7 @@ from scipy.stats import qmc
 from qlab.features import FeatureConfig, FeatureMap, GaussianRBF, GridBins, TileCoder, build_features, feature_count
 from qlab.learners.protocol import Transitions
 from qlab.learners.schedules import ScheduleConfig, check_epsilon
+from qlab.validation import require_choice, require_gamma
 
 STEP_SIZE_COUNTS = ("step", "visits")
 
@@ -56,12 +57,6 @@ QUADRATIC_POINTS_PER_DIM = 5
 GRAM_CHUNK_ROWS = 8192
 
 
-def check_gamma(gamma: float) -> None:
-    """Raise ``ValueError`` unless the discount lies in [0, 1]."""
-    if not 0.0 <= gamma <= 1.0:
-        raise ValueError(f"gamma must lie in [0, 1], got {gamma!r}")
-
-
 @dataclass
 class QLearningConfig:
     """Settings shared by the tabular and linear Q-learners."""
@@ -72,13 +67,12 @@ class QLearningConfig:
     step_size_count: str = "step"  # "step" | "visits"
 
     def __post_init__(self) -> None:
-        check_gamma(self.gamma)
+        require_gamma(self.gamma)
         check_epsilon("epsilon", self.epsilon)
         self.step_size.build("step_size")
         if not self.step_size.start > 0:
             raise ValueError(f"step_size.start must be > 0, got {self.step_size.start!r}")
-        if self.step_size_count not in STEP_SIZE_COUNTS:
-            raise ValueError(f"step_size_count must be one of {list(STEP_SIZE_COUNTS)}, got {self.step_size_count!r}")
+        require_choice("step_size_count", self.step_size_count, STEP_SIZE_COUNTS)
 
 
 @dataclass
@@ -169,6 +163,12 @@ def least_squares_weights(features: FeatureMap, obs: np.ndarray, targets: np.nda
     return scale[:, None] * np.stack(solve, axis=1)
 
 
+def least_squares_fit(features: FeatureMap, obs: np.ndarray, targets: np.ndarray) -> np.ndarray:
+    """The fitted values ``features(obs) @ W`` ``(N, k)`` of :func:`least_squares_weights`: each column of ``targets``
+    projected onto the span of the features at ``obs``."""
+    return features.sparse(obs) @ least_squares_weights(features, obs, targets)
+
+
 def _unit_scale(squared_norms: np.ndarray) -> np.ndarray:
     """``1 / sqrt(squared_norms)``, 0 where a norm is 0."""
     norms = np.sqrt(squared_norms)
@@ -251,6 +251,20 @@ class LinearQ:
         self.act_count = 0
         self.learn_count = 0
         self.rng = np.random.default_rng(seed)
+
+    # --- optional capabilities (qlab.learners.protocol) -------------------------------------
+
+    @property
+    def linear_features(self) -> FeatureMap:
+        """The state feature map: ``Q(s, a) = W[:, a] . phi(s)``."""
+        return self.features
+
+    def fit_function_class(self, observations: np.ndarray, targets: np.ndarray, steps: int | None = None) -> np.ndarray:
+        """Least squares of ``targets`` ``(N, n_actions)`` on the features at ``observations``, one column per action.
+
+        Closed form: ``steps`` is not used.
+        """
+        return least_squares_fit(self.features, observations, targets)
 
     # --- acting -----------------------------------------------------------------------------
 

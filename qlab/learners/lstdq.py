@@ -45,9 +45,10 @@ from qlab.features import (
     observation_dim,
     rows_to_csr,
 )
-from qlab.learners.linear import action_total, check_gamma, epsilon_greedy, restore_array, rng_state
-from qlab.learners.protocol import Transitions
+from qlab.learners.linear import action_total, epsilon_greedy, least_squares_fit, restore_array, rng_state
+from qlab.learners.protocol import QuadraticHead, Transitions
 from qlab.learners.schedules import ScheduleConfig, check_epsilon
+from qlab.validation import require_gamma, require_int, require_non_negative, require_positive
 
 
 @dataclass
@@ -66,17 +67,12 @@ class LSTDQConfig(FeatureConfig):
 
     def __post_init__(self) -> None:
         super().__post_init__()
-        check_gamma(self.gamma)
+        require_gamma(self.gamma)
         for name in ("refit_every", "n_iterations", "max_samples"):
-            value = getattr(self, name)
-            if int(value) != value or value < 1:
-                raise ValueError(f"{name} must be an integer >= 1, got {value!r}")
-        if not (np.isfinite(self.ridge) and self.ridge > 0):
-            raise ValueError(f"ridge must be a finite number > 0, got {self.ridge!r}")
-        if not (np.isfinite(self.tolerance) and self.tolerance >= 0):
-            raise ValueError(f"tolerance must be a finite number >= 0, got {self.tolerance!r}")
-        if not (np.isfinite(self.exploration_std) and self.exploration_std >= 0):
-            raise ValueError(f"exploration_std must be a finite number >= 0, got {self.exploration_std!r}")
+            require_int(name, getattr(self, name), 1)
+        require_positive("ridge", self.ridge)
+        require_non_negative("tolerance", self.tolerance)
+        require_non_negative("exploration_std", self.exploration_std)
         check_epsilon("epsilon", self.epsilon)
         if len({len(row) for row in self.initial_gain}) > 1:
             raise ValueError(f"initial_gain must be a list of equally long rows, got {self.initial_gain!r}")
@@ -155,9 +151,13 @@ class _QuadraticForm:
     def value(self, obs: np.ndarray) -> np.ndarray:
         return self.q_features(obs, self.greedy(obs)) @ self.weights
 
+    def form(self) -> tuple[np.ndarray, np.ndarray, float]:
+        """``(M, g, c)`` with ``Q = z'Mz + g'z + c`` for the current weights."""
+        return self.quad.to_matrix(self.weights)
+
     def improve(self) -> bool:
         """Make the policy greedy for the current weights; False (policy kept) if Q is not concave in u."""
-        M, g, _ = self.quad.to_matrix(self.weights)
+        M, g, _ = self.form()
         n = self.obs_dim
         M_uu = M[n:, n:]
         if np.linalg.eigvalsh(M_uu).max() >= 0.0:
@@ -224,6 +224,28 @@ class LSTDQ:
         k = n_features * action_total(action_space)
         samples = int(config.max_samples) * (16 * observation_dim(observation_space) + 32)
         return 8 * k * k + samples, f"{settings}, max_samples"
+
+    # --- optional capabilities (qlab.learners.protocol) -------------------------------------
+
+    @property
+    def linear_features(self) -> FeatureMap | None:
+        """Discrete actions: the state feature map (one weight block per action); continuous actions: None."""
+        return self.head.features if isinstance(self.head, _ActionBlocks) else None
+
+    @property
+    def quadratic_head(self) -> QuadraticHead | None:
+        """Continuous actions: the quadratic form of ``[x; u]`` and its greedy gain; discrete actions: None."""
+        return self.head if isinstance(self.head, _QuadraticForm) else None
+
+    def fit_function_class(self, observations: np.ndarray, targets: np.ndarray, steps: int | None = None) -> np.ndarray:
+        """Discrete actions: least squares of ``targets`` ``(N, n_actions)`` on the state features at ``observations``.
+
+        Closed form: ``steps`` is not used. Continuous actions have no finite action set: ``ValueError``.
+        """
+        features = self.linear_features
+        if features is None:
+            raise ValueError("fit_function_class needs a finite action set; this LSTDQ has continuous actions")
+        return least_squares_fit(features, observations, targets)
 
     # --- acting -----------------------------------------------------------------------------
 

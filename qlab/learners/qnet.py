@@ -37,24 +37,24 @@ from torch import nn
 from qlab.learners.protocol import Transitions
 from qlab.learners.replay import ReplayBuffer
 from qlab.learners.schedules import ScheduleConfig, check_epsilon
+from qlab.validation import (
+    require_choice,
+    require_gamma,
+    require_int,
+    require_int_list,
+    require_non_negative,
+    require_positive,
+    require_within,
+)
 
 LOSSES = ("squared", "huber")
 WEIGHT_PENALTIES = ("none", "l2", "l1")
 
-
-def _require_int(name: str, value: Any, low: int) -> None:
-    if isinstance(value, bool) or int(value) != value or value < low:
-        raise ValueError(f"{name} must be an integer >= {low}, got {value!r}")
-
-
-def _require_within(name: str, value: float, low: float, high: float) -> None:
-    if not (np.isfinite(value) and low <= value <= high):
-        raise ValueError(f"{name} must lie in [{low}, {high}], got {value!r}")
-
-
-def _require_choice(name: str, value: str, choices: tuple[str, ...]) -> None:
-    if value not in choices:
-        raise ValueError(f"{name} must be one of {list(choices)}, got {value!r}")
+#: Best fit of the architecture (:meth:`QNetLearner.fit_function_class`): full-batch Adam steps by
+#: default, step size, and the seed of the initial weights.
+FIT_STEPS = 2_000
+FIT_LEARNING_RATE = 1e-3
+FIT_SEED = 0
 
 
 @dataclass
@@ -85,32 +85,27 @@ class QNetConfig:
     torch_threads: int = 1
 
     def __post_init__(self) -> None:
-        if not self.hidden_sizes or any(isinstance(h, bool) or int(h) != h or h < 1 for h in self.hidden_sizes):
-            raise ValueError(f"hidden_sizes must be a non-empty list of integers >= 1, got {self.hidden_sizes!r}")
-        _require_within("gamma", self.gamma, 0.0, 1.0)
-        if not (np.isfinite(self.learning_rate) and self.learning_rate > 0):
-            raise ValueError(f"learning_rate must be a finite number > 0, got {self.learning_rate!r}")
-        _require_int("batch_size", self.batch_size, 1)
-        _require_int("replay_capacity", self.replay_capacity, 1)
+        require_int_list("hidden_sizes", self.hidden_sizes, 1)
+        require_gamma(self.gamma)
+        require_positive("learning_rate", self.learning_rate)
+        require_int("batch_size", self.batch_size, 1)
+        require_int("replay_capacity", self.replay_capacity, 1)
         if self.replay_capacity < self.batch_size:
             raise ValueError(
                 f"replay_capacity must be >= batch_size ({self.batch_size}), got {self.replay_capacity!r}"
             )
-        _require_int("warmup_steps", self.warmup_steps, 0)
-        _require_int("update_every", self.update_every, 1)
-        _require_int("target_update_every", self.target_update_every, 1)
-        _require_within("polyak_tau", self.polyak_tau, 0.0, 1.0)
-        _require_choice("loss", self.loss, LOSSES)
-        if not (np.isfinite(self.huber_delta) and self.huber_delta > 0):
-            raise ValueError(f"huber_delta must be a finite number > 0, got {self.huber_delta!r}")
-        _require_choice("weight_penalty", self.weight_penalty, WEIGHT_PENALTIES)
-        if not (np.isfinite(self.penalty_coef) and self.penalty_coef >= 0):
-            raise ValueError(f"penalty_coef must be a finite number >= 0, got {self.penalty_coef!r}")
-        _require_int("n_step", self.n_step, 1)
+        require_int("warmup_steps", self.warmup_steps, 0)
+        require_int("update_every", self.update_every, 1)
+        require_int("target_update_every", self.target_update_every, 1)
+        require_within("polyak_tau", self.polyak_tau, 0.0, 1.0)
+        require_choice("loss", self.loss, LOSSES)
+        require_positive("huber_delta", self.huber_delta)
+        require_choice("weight_penalty", self.weight_penalty, WEIGHT_PENALTIES)
+        require_non_negative("penalty_coef", self.penalty_coef)
+        require_int("n_step", self.n_step, 1)
         check_epsilon("epsilon", self.epsilon)
-        if not (np.isfinite(self.grad_clip_norm) and self.grad_clip_norm >= 0):
-            raise ValueError(f"grad_clip_norm must be a finite number >= 0 (0 disables), got {self.grad_clip_norm!r}")
-        _require_int("torch_threads", self.torch_threads, 1)
+        require_non_negative("grad_clip_norm", self.grad_clip_norm, note="(0 disables)")
+        require_int("torch_threads", self.torch_threads, 1)
 
 
 
@@ -179,6 +174,34 @@ class QNetLearner:
         """Bytes of the replay memory (two float32 observations, action, reward and flags per slot)."""
         obs_dim = int(np.prod(observation_space.shape or (1,)))
         return int(config.replay_capacity) * (8 * obs_dim + 18), "replay_capacity"
+
+    # --- optional capabilities (qlab.learners.protocol) -------------------------------------
+
+    def fit_function_class(self, observations: np.ndarray, targets: np.ndarray, steps: int | None = None) -> np.ndarray:
+        """The same architecture trained on ``targets`` ``(N, n_actions)`` at ``observations`` by full-batch Adam.
+
+        Mean squared error, ``steps`` steps (None: ``FIT_STEPS``) of step size ``FIT_LEARNING_RATE``
+        from initial weights seeded by ``FIT_SEED``, on one torch thread (the thread count is
+        restored after). Depends on the config only, never on the learner's weights or seed; an
+        upper bound of the best fit, as training need not reach the optimum.
+        """
+        steps = FIT_STEPS if steps is None else require_int("steps", steps, 1)
+        threads = torch.get_num_threads()
+        torch.set_num_threads(1)
+        try:
+            generator = torch.Generator().manual_seed(FIT_SEED)
+            net = build_mlp(self.obs_dim, self.config.hidden_sizes, self.n_actions, generator)
+            x = torch.from_numpy(np.asarray(observations, dtype=np.float32))
+            y = torch.from_numpy(np.asarray(targets).astype(np.float32))
+            optimizer = torch.optim.Adam(net.parameters(), lr=FIT_LEARNING_RATE)
+            for _ in range(steps):
+                optimizer.zero_grad(set_to_none=True)
+                nn.functional.mse_loss(net(x), y).backward()
+                optimizer.step()
+            with torch.no_grad():
+                return net(x).double().numpy()
+        finally:
+            torch.set_num_threads(threads)
 
     # --- acting ----------------------------------------------------------------------------
 

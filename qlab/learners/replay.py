@@ -22,6 +22,7 @@ from typing import Any
 import numpy as np
 
 from qlab.learners.protocol import Transitions
+from qlab.validation import require_gamma, require_int
 
 _FIELDS = ("obs", "action", "reward", "next_obs", "terminated", "truncated")
 
@@ -51,21 +52,14 @@ class ReplayBuffer:
         action_shape: tuple[int, ...] = (),
         action_dtype: np.dtype | type = np.int64,
     ):
-        if int(capacity) != capacity or capacity < 1:
-            raise ValueError(f"capacity must be an integer >= 1, got {capacity!r}")
-        if int(obs_dim) != obs_dim or obs_dim < 1:
-            raise ValueError(f"obs_dim must be an integer >= 1, got {obs_dim!r}")
-        if not 0.0 <= gamma <= 1.0:
-            raise ValueError(f"gamma must lie in [0, 1], got {gamma!r}")
-        if int(n_step) != n_step or n_step < 1:
-            raise ValueError(f"n_step must be an integer >= 1, got {n_step!r}")
-        self.capacity = int(capacity)
-        self.gamma = float(gamma)
-        self.n_step = int(n_step)
-        self.obs = np.zeros((self.capacity, int(obs_dim)), dtype=obs_dtype)
+        self.capacity = require_int("capacity", capacity, 1)
+        obs_dim = require_int("obs_dim", obs_dim, 1)
+        self.gamma = require_gamma(gamma)
+        self.n_step = require_int("n_step", n_step, 1)
+        self.obs = np.zeros((self.capacity, obs_dim), dtype=obs_dtype)
         self.action = np.zeros((self.capacity, *action_shape), dtype=action_dtype)
         self.reward = np.zeros(self.capacity, dtype=np.float64)
-        self.next_obs = np.zeros((self.capacity, int(obs_dim)), dtype=obs_dtype)
+        self.next_obs = np.zeros((self.capacity, obs_dim), dtype=obs_dtype)
         self.terminated = np.zeros(self.capacity, dtype=bool)
         self.truncated = np.zeros(self.capacity, dtype=bool)
         self.streams = 0  # fixed by the first batch

@@ -13,6 +13,8 @@ from dataclasses import dataclass
 
 import numpy as np
 
+from qlab.validation import require_choice, require_within
+
 SCHEDULE_KINDS = ("constant", "linear", "exponential", "polynomial")
 
 
@@ -27,12 +29,11 @@ class Schedule:
     power: float = 1.0
 
     def __post_init__(self) -> None:
-        if self.kind not in SCHEDULE_KINDS:
-            raise ValueError(f"schedule kind must be one of {list(SCHEDULE_KINDS)}, got {self.kind!r}")
+        require_choice("schedule kind", self.kind, SCHEDULE_KINDS)
         if self.horizon <= 0:
             raise ValueError(f"schedule horizon must be > 0, got {self.horizon!r}")
-        if self.kind == "polynomial" and not 0.5 < self.power <= 1.0:
-            raise ValueError(f"polynomial schedule power must lie in (0.5, 1], got {self.power!r}")
+        if self.kind == "polynomial":
+            require_within("polynomial schedule power", self.power, 0.5, 1.0, open_low=True)
 
     def __call__(self, n: np.ndarray | int) -> np.ndarray | float:
         n = np.asarray(n, dtype=np.float64)

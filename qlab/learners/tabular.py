@@ -21,8 +21,9 @@ from dataclasses import dataclass, field
 import numpy as np
 from gymnasium import spaces
 
-from qlab.features import FeatureConfig, GridBins, check_bins, feature_count, resolve_bounds
+from qlab.features import BINS_NOTE, FeatureConfig, GridBins, feature_count, resolve_bounds
 from qlab.learners.linear import LinearQ, QLearningConfig, action_total, function_values
+from qlab.validation import require_int_list
 
 
 @dataclass
@@ -36,7 +37,7 @@ class TabularConfig(QLearningConfig):
 
     def __post_init__(self) -> None:
         super().__post_init__()
-        check_bins("bins", self.bins)
+        require_int_list("bins", self.bins, 1, BINS_NOTE)
         if not np.isfinite(self.initial_q):
             raise ValueError(f"initial_q must be finite, got {self.initial_q!r}")
 

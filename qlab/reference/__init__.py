@@ -1,4 +1,4 @@
-"""Exact reference answers: finite-MDP value iteration, LQ Riccati solutions, grid models of the tasks.
+"""Exact reference answers: finite-MDP value iteration, LQ Riccati solutions, grid models of the tasks solved.
 
 The finite-MDP tools load eagerly. The LQ and grid-model names load on first use, so a missing
 or broken optional module fails only where its names are used.
@@ -23,7 +23,12 @@ _LAZY_NAMES = {
     "gain_q_matrix": "qlab.reference.lq",
     "noise_offset": "qlab.reference.lq",
     "cost_to_go_matrix": "qlab.reference.lq",
+    "LQReference": "qlab.reference.lq",
+    "lq_reference": "qlab.reference.lq",
+    "lq_states": "qlab.reference.lq",
     "DockGrid": "qlab.reference.dock_grid",
+    "GridReference": "qlab.reference.dock_answers",
+    "grid_reference": "qlab.reference.dock_answers",
 }
 
 
@@ -43,13 +48,18 @@ def __dir__() -> list[str]:
 
 __all__ = [
     "DockGrid",
+    "GridReference",
+    "LQReference",
     "TransitionModel",
     "bellman_backup",
     "cost_to_go_matrix",
     "evaluate_policy",
     "gain_q_matrix",
     "greedy_policy",
+    "grid_reference",
+    "lq_reference",
     "lq_solution",
+    "lq_states",
     "noise_offset",
     "q_from_v",
     "value_iteration",

@@ -25,6 +25,7 @@ import scipy.sparse as sp
 
 from qlab.shaping import check_variant, shaping_bonus
 from qlab.tasks.dock import Dock
+from qlab.validation import require_gamma, require_int
 
 #: Bump when the grid construction changes, so stale cache files are not reused.
 GRID_FORMAT_VERSION = 1
@@ -59,12 +60,9 @@ class DockGrid:
             raise ValueError("task must use action_kind='discrete' for a grid model")
         if task.velocity_noise_m_s != 0:
             raise ValueError("DockGrid models the noise-free task: velocity_noise_m_s must be 0")
-        for name, value in (("n_position", n_position), ("n_velocity", n_velocity)):
-            if int(value) != value or value < 2:
-                raise ValueError(f"{name} must be an integer >= 2, got {value!r}")
         self.task = task
-        self.n_position = int(n_position)
-        self.n_velocity = int(n_velocity)
+        self.n_position = require_int("n_position", n_position, 2)
+        self.n_velocity = require_int("n_velocity", n_velocity, 2)
         self.positions_m = np.linspace(task.state_low[0], task.state_high[0], self.n_position)
         self.velocities_m_s = np.linspace(task.state_low[1], task.state_high[1], self.n_velocity)
         grid_x, grid_v = np.meshgrid(self.positions_m, self.velocities_m_s, indexing="ij")
@@ -117,10 +115,9 @@ class DockGrid:
         each spread on the grid with the bilinear weights, so ``start_weights() @ V`` is the
         expected interpolated value at the start.
         """
-        if int(n_samples) != n_samples or n_samples < 1:
-            raise ValueError(f"n_samples must be an integer >= 1, got {n_samples!r}")
+        n_samples = require_int("n_samples", n_samples, 1)
         lo, hi = self.task.start_distance_m
-        starts = np.zeros((int(n_samples), 2))
+        starts = np.zeros((n_samples, 2))
         starts[:, 0] = -(lo + (np.arange(n_samples) + 0.5) / n_samples * (hi - lo))
         return np.asarray(self.interpolation_matrix(starts).mean(axis=0)).ravel()
 
@@ -141,8 +138,7 @@ class DockGrid:
         task pays (``k = progress_scale``, default the task's ``default_progress_scale``).
         """
         check_variant(variant, self.task.shaping_variants)
-        if not 0.0 <= gamma <= 1.0:
-            raise ValueError(f"gamma must lie in [0, 1], got {gamma!r}")
+        gamma = require_gamma(gamma)
         if variant == "none":
             return self.base_reward.copy()
         if variant == "progress":

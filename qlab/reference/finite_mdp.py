@@ -21,6 +21,8 @@ import scipy.sparse as sp
 from scipy.sparse.csgraph import breadth_first_order
 from scipy.sparse.linalg import spsolve
 
+from qlab.validation import require_gamma, require_int, require_positive
+
 ROW_SUM_ATOL = 1e-8
 """How far a row of ``P[a]`` or of a policy may sum away from 1."""
 
@@ -140,12 +142,6 @@ def _check_row_sums(name: str, row_sums: np.ndarray) -> None:
         )
 
 
-def _check_gamma(gamma: float) -> float:
-    if not (isinstance(gamma, int | float | np.floating | np.integer) and 0.0 <= gamma <= 1.0):
-        raise ValueError(f"gamma must be a number in [0, 1], got {gamma!r}")
-    return float(gamma)
-
-
 def _check_state_action(name: str, array: np.ndarray, model: TransitionModel) -> np.ndarray:
     values = np.asarray(array, dtype=np.float64)
     expected = (model.n_states, model.n_actions)
@@ -187,11 +183,9 @@ def value_iteration(
     """
     model = TransitionModel.build(P)
     rewards = _check_state_action("R", R, model)
-    gamma = _check_gamma(gamma)
-    if not (np.isfinite(tol) and tol > 0.0):
-        raise ValueError(f"tol must be a positive number, got {tol!r}")
-    if int(max_iter) != max_iter or max_iter < 1:
-        raise ValueError(f"max_iter must be a positive integer, got {max_iter!r}")
+    gamma = require_gamma(gamma)
+    require_positive("tol", tol)
+    max_iter = require_int("max_iter", max_iter, 1)
     if gamma == 1.0:
         threshold = tol
     elif gamma == 0.0:
@@ -202,7 +196,7 @@ def value_iteration(
     V = np.zeros(model.n_states)
     change = np.inf
     rounding_unit = _FLOAT_NOISE_ULPS * np.finfo(np.float64).eps
-    for _ in range(int(max_iter)):
+    for _ in range(max_iter):
         V_next = model.backup_by_action(rewards_by_action, gamma, V).max(axis=0)
         change = float(np.max(np.abs(V_next - V)))
         V = V_next
@@ -210,7 +204,7 @@ def value_iteration(
             return bellman_backup(model, rewards, gamma, V)
     hint = " (at gamma = 1 every policy must end in an absorbing zero-reward state)" if gamma == 1.0 else ""
     warnings.warn(
-        f"value_iteration did not converge in max_iter={int(max_iter)} sweeps: last sup-norm change "
+        f"value_iteration did not converge in max_iter={max_iter} sweeps: last sup-norm change "
         f"{change:.3g} >= threshold {threshold:.3g}{hint}; returning the last iterate",
         RuntimeWarning,
         stacklevel=2,
@@ -233,7 +227,7 @@ def evaluate_policy(
     """
     model = TransitionModel.build(P)
     rewards = _check_state_action("R", R, model)
-    gamma = _check_gamma(gamma)
+    gamma = require_gamma(gamma)
     pi = _check_policy(policy, model)
     keep = ~(model.absorbing & np.all(rewards == 0.0, axis=1))  # False on pinned terminal states
     r_pi = np.sum(pi * rewards, axis=1) * keep
@@ -284,7 +278,7 @@ def q_from_v(
     """Q[s, a] = R[s, a] + gamma * sum_s' P[a][s, s'] V[s'], shape ``(S, A)``."""
     model = TransitionModel.build(P)
     rewards = _check_state_action("R", R, model)
-    gamma = _check_gamma(gamma)
+    gamma = require_gamma(gamma)
     values = np.asarray(V, dtype=np.float64)
     if values.shape != (model.n_states,):
         raise ValueError(f"V must have shape (S,) = ({model.n_states},), got {values.shape}")

@@ -15,22 +15,26 @@ Plant ``x[t+1] = A x[t] + B u[t] (+ w[t])``, stage cost ``c(x, u) = x'Qx + u'Ru`
   :func:`noise_offset` ``gamma / (1 - gamma) tr(P W)`` to both ``V`` and ``Q``:
   ``Q_noisy(x, u) = [x; u]' H [x; u] + gamma / (1 - gamma) tr(P W)`` (same with ``P_K`` for a
   fixed gain).
+* :func:`lq_reference`: all of it for a :class:`~qlab.tasks.linear_quadratic.LinearQuadratic`
+  task in its reward form (:class:`LQReference`: V*, Q*, the gain and the start moment), and
+  :func:`lq_states`, a uniform grid of states to compare learners on.
 """
 
 from __future__ import annotations
+
+from dataclasses import dataclass
+from typing import TYPE_CHECKING
 
 import numpy as np
 import scipy.linalg
 from numpy.typing import ArrayLike
 
+from qlab.validation import require_gamma, require_int, require_positive
+
+if TYPE_CHECKING:
+    from qlab.tasks.linear_quadratic import LinearQuadratic
+
 _SYM_TOL = 1e-10  # relative tolerance for symmetry and semi-definiteness checks
-
-
-def check_gamma(gamma: float) -> float:
-    """Return ``gamma`` if it lies in (0, 1], else raise ``ValueError``."""
-    if not np.isfinite(gamma) or not 0.0 < gamma <= 1.0:
-        raise ValueError(f"gamma must lie in (0, 1], got {gamma!r}")
-    return float(gamma)
 
 
 def _matrix(name: str, value: ArrayLike, shape: tuple[int, int], what: str) -> np.ndarray:
@@ -94,7 +98,7 @@ def _q_matrix(A: np.ndarray, B: np.ndarray, Q: np.ndarray, R: np.ndarray, gamma:
 
 def cost_to_go_matrix(A: ArrayLike, B: ArrayLike, Q: ArrayLike, R: ArrayLike, gamma: float) -> np.ndarray:
     """``P`` of the optimal discounted cost-to-go ``V*(x) = x'Px`` of the noise-free plant (n x n)."""
-    return _riccati(*check_lq_matrices(A, B, Q, R), check_gamma(gamma))
+    return _riccati(*check_lq_matrices(A, B, Q, R), require_gamma(gamma, above_zero=True))
 
 
 def _riccati(A: np.ndarray, B: np.ndarray, Q: np.ndarray, R: np.ndarray, gamma: float) -> np.ndarray:
@@ -114,7 +118,7 @@ def lq_solution(
 ) -> tuple[np.ndarray, np.ndarray]:
     """Optimal gain ``K`` (m x n, ``u = -K x``) and Q-function matrix ``H`` ((n+m) x (n+m), cost form)."""
     A, B, Q, R = check_lq_matrices(A, B, Q, R)
-    gamma = check_gamma(gamma)
+    gamma = require_gamma(gamma, above_zero=True)
     H = _q_matrix(A, B, Q, R, gamma, _riccati(A, B, Q, R, gamma))
     n = A.shape[0]
     K = np.linalg.solve(H[n:, n:], H[n:, :n])
@@ -131,7 +135,7 @@ def gain_q_matrix(
     makes the discounted closed loop stable: spectral radius of ``sqrt(gamma) (A - B K)`` < 1.
     """
     A, B, Q, R = check_lq_matrices(A, B, Q, R)
-    gamma = check_gamma(gamma)
+    gamma = require_gamma(gamma, above_zero=True)
     n, m = B.shape
     K = _matrix("K", K, (m, n), "feedback gain, m x n")
     closed = np.sqrt(gamma) * (A - B @ K)
@@ -156,8 +160,7 @@ def noise_offset(P: ArrayLike, W: ArrayLike, gamma: float) -> float:
         raise ValueError(f"P must be a square n x n matrix, got shape {P.shape}")
     P = _symmetric("P", _matrix("P", P, P.shape, "cost-to-go"), definite=False)
     W = check_noise_cov(W, P.shape[0])
-    if not np.isfinite(gamma) or not 0.0 < gamma < 1.0:
-        raise ValueError(f"gamma must lie in (0, 1) for a noise offset (it diverges at 1), got {gamma!r}")
+    gamma = require_gamma(gamma, above_zero=True, below_one=True, note="for a noise offset (it diverges at 1)")
     return float(gamma / (1.0 - gamma) * np.trace(P @ W))
 
 
@@ -168,3 +171,60 @@ def quadratic_cost(H: ArrayLike, x: ArrayLike, u: ArrayLike) -> np.ndarray:
     if H.shape != (z.shape[1], z.shape[1]):
         raise ValueError(f"H must be (n+m) x (n+m) = {z.shape[1]} x {z.shape[1]} for these x and u, got {H.shape}")
     return np.einsum("ni,ij,nj->n", z, H, z)
+
+
+@dataclass(frozen=True)
+class LQReference:
+    """Closed-form answers of a linear-quadratic task at one discount (matrices in cost form)."""
+
+    A: np.ndarray
+    B: np.ndarray
+    Q: np.ndarray
+    R: np.ndarray
+    gamma: float
+    noise_cov: np.ndarray | None  # W, None when noise-free
+    gain: np.ndarray  # K* (m, n): u*(x) = -K* x
+    q_matrix: np.ndarray  # H* (n+m, n+m): Q*(x, u) = -[x; u]' H* [x; u] - offset
+    cost_to_go: np.ndarray  # P* (n, n): V*(x) = -x' P* x - offset
+    offset: float  # gamma / (1 - gamma) tr(P* W) of the process noise, 0 without noise
+    start_moment: np.ndarray  # E[x0 x0'] (n, n) under the task's start distribution
+
+    def v_star(self, x: np.ndarray) -> np.ndarray:
+        """V*(x) of the task's reward for a batch of states ``(N, n)`` -> ``(N,)``."""
+        return -np.einsum("ni,ij,nj->n", x, self.cost_to_go, x) - self.offset
+
+    def q_star(self, x: np.ndarray, u: np.ndarray) -> np.ndarray:
+        """Q*(x, u) of the task's reward for a batch, ``(N,)``."""
+        return -quadratic_cost(self.q_matrix, x, u) - self.offset
+
+
+def lq_reference(task: LinearQuadratic, gamma: float) -> LQReference:
+    """Riccati solution of ``task`` at discount ``gamma``, noise constant and start moment.
+
+    The start state is uniform in ``[start_low, start_high]``: ``E[x0 x0'] = mu mu' + diag((high - low)^2 / 12)``.
+    With process noise, ``gamma`` must be < 1 (the noise cost diverges at 1).
+    """
+    A, B, Q, R = check_lq_matrices(task.A, task.B, task.Q, task.R)
+    K, H = lq_solution(A, B, Q, R, gamma)
+    P = cost_to_go_matrix(A, B, Q, R, gamma)
+    W = task.noise_cov
+    mid = 0.5 * (task.start_low + task.start_high)
+    return LQReference(
+        A=A, B=B, Q=Q, R=R, gamma=float(gamma), noise_cov=W, gain=K, q_matrix=H, cost_to_go=P,
+        offset=0.0 if W is None else noise_offset(P, W, gamma),
+        start_moment=np.outer(mid, mid) + np.diag((task.start_high - task.start_low) ** 2 / 12.0),
+    )
+
+
+def lq_states(n_state: int, half_width: float, n_points: int) -> tuple[np.ndarray, np.ndarray]:
+    """A uniform grid over ``[-half_width, half_width]^n_state``: the axis ``(k,)`` and the states ``(k^n, n)``.
+
+    ``k = n_points`` for one or two dimensions, else ``max(2, round(n_points^(2 / n_state)))``; the
+    states are in C order (the last dimension varies fastest).
+    """
+    require_positive("state grid half width", half_width)
+    require_int("state grid points", n_points, 2)
+    per_axis = int(n_points) if n_state <= 2 else max(2, round(n_points ** (2.0 / n_state)))
+    axis = np.linspace(-half_width, half_width, per_axis)
+    mesh = np.meshgrid(*[axis] * n_state, indexing="ij")
+    return axis, np.stack([g.ravel() for g in mesh], axis=1)

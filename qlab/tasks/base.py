@@ -19,6 +19,8 @@ import gymnasium as gym
 import numpy as np
 from gymnasium import spaces
 
+from qlab.validation import require_choice, require_int
+
 ACTION_KINDS = ("discrete", "continuous")
 
 
@@ -30,30 +32,6 @@ class StepOutcome:
     base_reward: np.ndarray  # (N,) float64, the task's own reward
     terminated: np.ndarray  # (N,) bool, success or failure (or the end of a batch)
     success: np.ndarray  # (N,) bool
-
-
-def require_positive(name: str, value: float) -> float:
-    """Return ``value`` if it is a finite positive number, else raise ``ValueError`` naming it."""
-    if not np.isfinite(value) or value <= 0:
-        raise ValueError(f"{name} must be a finite number > 0, got {value!r}")
-    return float(value)
-
-
-def require_choice(name: str, value: str, choices: tuple[str, ...]) -> str:
-    """Return ``value`` if it is one of ``choices``, else raise ``ValueError`` listing them."""
-    if value not in choices:
-        raise ValueError(f"{name} must be one of {list(choices)}, got {value!r}")
-    return value
-
-
-def require_range(name: str, value: tuple[float, float], low: float = -np.inf) -> tuple[float, float]:
-    """Return ``(lo, hi)`` with ``low <= lo <= hi``, else raise ``ValueError`` naming it."""
-    if len(value) != 2:
-        raise ValueError(f"{name} must be a (low, high) pair, got {value!r}")
-    lo, hi = (float(v) for v in value)
-    if not (np.isfinite(lo) and np.isfinite(hi) and low <= lo <= hi):
-        raise ValueError(f"{name} must be a finite (low, high) pair with {low} <= low <= high, got {value!r}")
-    return lo, hi
 
 
 class ControlTask(gym.Env):
@@ -92,13 +70,12 @@ class ControlTask(gym.Env):
         self.action_kind = action_kind
         self.clip_controls = clip
         if action_kind == "discrete":
-            if int(n_levels) != n_levels or n_levels < 2:
-                raise ValueError(f"n_levels must be an integer >= 2, got {n_levels!r}")
+            n_levels = require_int("n_levels", n_levels, 2)
             if not (np.all(np.isfinite(self.control_low)) and np.all(np.isfinite(self.control_high))):
                 raise ValueError("discrete actions need finite control bounds")
-            frac = np.linspace(0.0, 1.0, int(n_levels))[:, None]
+            frac = np.linspace(0.0, 1.0, n_levels)[:, None]
             self.control_levels = self.control_low + frac * (self.control_high - self.control_low)
-            self.action_space = spaces.Discrete(int(n_levels))
+            self.action_space = spaces.Discrete(n_levels)
         else:
             self.control_levels = None
             low = self.control_low if clip else np.full_like(self.control_low, -np.inf)
@@ -106,9 +83,7 @@ class ControlTask(gym.Env):
             self.action_space = spaces.Box(low.astype(np.float32), high.astype(np.float32), dtype=np.float32)
 
     def _setup_time_cap(self, max_steps: int) -> None:
-        if int(max_steps) != max_steps or max_steps < 1:
-            raise ValueError(f"max_steps must be an integer >= 1, got {max_steps!r}")
-        self.max_steps = int(max_steps)
+        self.max_steps = require_int("max_steps", max_steps, 1)
         self._state: np.ndarray | None = None
         self._elapsed = 0
 

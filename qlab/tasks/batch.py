@@ -23,6 +23,7 @@ from gymnasium.utils import seeding
 
 from qlab.shaping import check_variant, shaping_bonus
 from qlab.tasks.base import ControlTask
+from qlab.validation import require_int
 
 _UINT64 = (1 << 64) - 1
 
@@ -116,10 +117,8 @@ class TaskBatch:
         gamma: float = 0.99,
         progress_scale: float | None = None,
     ):
-        if int(n) != n or n < 1:
-            raise ValueError(f"n must be an integer >= 1, got {n!r}")
         self.task = task
-        self.n = int(n)
+        self.n = require_int("n", n, 1)
         self.shaping = check_variant(shaping, task.shaping_variants)
         self.gamma = float(gamma)
         self.progress_scale = task.default_progress_scale if progress_scale is None else float(progress_scale)

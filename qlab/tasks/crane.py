@@ -7,13 +7,8 @@ from typing import ClassVar
 import numpy as np
 from gymnasium import spaces
 
-from qlab.tasks.base import ControlTask, StepOutcome, require_positive, require_range
-
-
-def _require_non_negative(name: str, value: float) -> float:
-    if not np.isfinite(value) or value < 0:
-        raise ValueError(f"{name} must be a finite number >= 0, got {value!r}")
-    return float(value)
+from qlab.tasks.base import ControlTask, StepOutcome
+from qlab.validation import require_int, require_non_negative, require_positive, require_range
 
 
 class Crane(ControlTask):
@@ -143,7 +138,7 @@ class Crane(ControlTask):
         self.mass_load_kg = require_positive("mass_load_kg", mass_load_kg)
         self.rope_length_m = require_positive("rope_length_m", rope_length_m)
         self.max_force_N = require_positive("max_force_N", max_force_N)
-        self.friction_N_s_m = _require_non_negative("friction_N_s_m", friction_N_s_m)
+        self.friction_N_s_m = require_non_negative("friction_N_s_m", friction_N_s_m)
         self.gravity_m_s2 = require_positive("gravity_m_s2", gravity_m_s2)
         self.rail_length_m = require_positive("rail_length_m", rail_length_m)
         self.target_m = float(target_m)
@@ -163,11 +158,9 @@ class Crane(ControlTask):
         self.sway_tol_rad = require_positive("sway_tol_rad", sway_tol_rad)
         self.sway_rate_tol_rad_s = require_positive("sway_rate_tol_rad_s", sway_rate_tol_rad_s)
         self.dt_s = require_positive("dt_s", dt_s)
-        if int(substeps) != substeps or substeps < 1:
-            raise ValueError(f"substeps must be an integer >= 1, got {substeps!r}")
-        self.substeps = int(substeps)
+        self.substeps = require_int("substeps", substeps, 1)
         self.lock_trolley = bool(lock_trolley)
-        self.force_noise_N = _require_non_negative("force_noise_N", force_noise_N)
+        self.force_noise_N = require_non_negative("force_noise_N", force_noise_N)
         self.potential_scale_m = require_positive("potential_scale_m", potential_scale_m)
 
         M, m, L, g = self.mass_trolley_kg, self.mass_load_kg, self.rope_length_m, self.gravity_m_s2

@@ -7,7 +7,8 @@ from typing import Any
 import numpy as np
 from gymnasium import spaces
 
-from qlab.tasks.base import ControlTask, StepOutcome, require_positive, require_range
+from qlab.tasks.base import ControlTask, StepOutcome
+from qlab.validation import require_int, require_non_negative, require_positive, require_range
 
 #: The velocity bounds of the observation are this multiple of the terminal speed under full thrust.
 VELOCITY_LIMIT_FACTOR = 1.25
@@ -97,8 +98,8 @@ class Dock(ControlTask):
     ):
         self.mass_kg = require_positive("mass_kg", mass_kg)
         self.max_thrust_N = require_positive("max_thrust_N", max_thrust_N)
-        self.linear_drag_N_s_per_m = _require_non_negative("linear_drag_N_s_per_m", linear_drag_N_s_per_m)
-        self.quadratic_drag_N_s2_per_m2 = _require_non_negative(
+        self.linear_drag_N_s_per_m = require_non_negative("linear_drag_N_s_per_m", linear_drag_N_s_per_m)
+        self.quadratic_drag_N_s2_per_m2 = require_non_negative(
             "quadratic_drag_N_s2_per_m2", quadratic_drag_N_s2_per_m2
         )
         if self.linear_drag_N_s_per_m + self.quadratic_drag_N_s2_per_m2 <= 0:
@@ -107,14 +108,12 @@ class Dock(ControlTask):
             )
         self.berth_half_length_m = require_positive("berth_half_length_m", berth_half_length_m)
         self.contact_speed_m_s = require_positive("contact_speed_m_s", contact_speed_m_s)
-        self.quay_margin_m = _require_non_negative("quay_margin_m", quay_margin_m)
+        self.quay_margin_m = require_non_negative("quay_margin_m", quay_margin_m)
         self.start_distance_m = require_range("start_distance_m", start_distance_m, low=self.berth_half_length_m)
         self.channel_margin_m = require_positive("channel_margin_m", channel_margin_m)
         self.dt_s = require_positive("dt_s", dt_s)
-        if int(substeps) != substeps or substeps < 1:
-            raise ValueError(f"substeps must be an integer >= 1, got {substeps!r}")
-        self.substeps = int(substeps)
-        self.velocity_noise_m_s = _require_non_negative("velocity_noise_m_s", velocity_noise_m_s)
+        self.substeps = require_int("substeps", substeps, 1)
+        self.velocity_noise_m_s = require_non_negative("velocity_noise_m_s", velocity_noise_m_s)
         self.potential_length_m = require_positive("potential_length_m", potential_length_m)
 
         self.quay_position_m = self.berth_half_length_m + self.quay_margin_m
@@ -228,8 +227,3 @@ class Dock(ControlTask):
         """Phi = exp(-goal_distance / potential_length_m), in (0, 1], 1 inside the berth."""
         return np.exp(-self.goal_distance(obs) / self.potential_length_m)
 
-
-def _require_non_negative(name: str, value: float) -> float:
-    if not np.isfinite(value) or value < 0:
-        raise ValueError(f"{name} must be a finite number >= 0, got {value!r}")
-    return float(value)

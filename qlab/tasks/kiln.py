@@ -7,25 +7,13 @@ from typing import ClassVar
 import numpy as np
 from gymnasium import spaces
 
-from qlab.tasks.base import ControlTask, StepOutcome, require_positive, require_range
+from qlab.tasks.base import ControlTask, StepOutcome
+from qlab.validation import require_int, require_non_negative, require_positive, require_range
 
 #: Absolute zero (degC), the lowest temperature a start range may name.
 ABSOLUTE_ZERO_DEGC = -273.15
 
 
-def _require_count(name: str, value: int, minimum: int) -> int:
-    """Return ``value`` if it is an integer >= ``minimum``, else raise ``ValueError`` naming it."""
-    numeric = isinstance(value, (int, float, np.integer, np.floating)) and not isinstance(value, bool)
-    if not (numeric and float(value).is_integer() and value >= minimum):
-        raise ValueError(f"{name} must be an integer >= {minimum}, got {value!r}")
-    return int(value)
-
-
-def _require_non_negative(name: str, value: float) -> float:
-    """Return ``value`` if it is a finite number >= 0, else raise ``ValueError`` naming it."""
-    if not np.isfinite(value) or value < 0:
-        raise ValueError(f"{name} must be a finite number >= 0, got {value!r}")
-    return float(value)
 
 
 class Kiln(ControlTask):
@@ -154,14 +142,14 @@ class Kiln(ControlTask):
         if not np.isfinite(ambient_degC) or ambient_degC < ABSOLUTE_ZERO_DEGC:
             raise ValueError(f"ambient_degC must be a finite temperature >= {ABSOLUTE_ZERO_DEGC}, got {ambient_degC!r}")
         self.ambient_degC = float(ambient_degC)
-        self.dead_time_steps = _require_count("dead_time_steps", dead_time_steps, 0)
-        self.ramp_steps = _require_count("ramp_steps", ramp_steps, 1)
-        self.soak_steps = _require_count("soak_steps", soak_steps, 1)
-        self.cool_steps = _require_count("cool_steps", cool_steps, 0)
+        self.dead_time_steps = require_int("dead_time_steps", dead_time_steps, 0)
+        self.ramp_steps = require_int("ramp_steps", ramp_steps, 1)
+        self.soak_steps = require_int("soak_steps", soak_steps, 1)
+        self.cool_steps = require_int("cool_steps", cool_steps, 0)
         self.schedule_steps = self.ramp_steps + self.soak_steps + self.cool_steps
         self.ramp_limit_degC_per_h = require_positive("ramp_limit_degC_per_h", ramp_limit_degC_per_h)
-        self.allowed_ramp_violations = _require_count("allowed_ramp_violations", allowed_ramp_violations, 0)
-        self.temperature_noise_degC = _require_non_negative("temperature_noise_degC", temperature_noise_degC)
+        self.allowed_ramp_violations = require_int("allowed_ramp_violations", allowed_ramp_violations, 0)
+        self.temperature_noise_degC = require_non_negative("temperature_noise_degC", temperature_noise_degC)
         self.start_temperature_degC = require_range("start_temperature_degC", start_temperature_degC,
                                                     low=ABSOLUTE_ZERO_DEGC)
         self.observe_pending = bool(observe_pending)

@@ -9,7 +9,8 @@ from gymnasium import spaces
 from numpy.typing import ArrayLike
 
 from qlab.reference.lq import check_costs, check_dynamics, check_noise_cov
-from qlab.tasks.base import ControlTask, StepOutcome, require_positive
+from qlab.tasks.base import ControlTask, StepOutcome
+from qlab.validation import require_positive
 
 
 def double_integrator(dt_s: float) -> tuple[np.ndarray, np.ndarray]:
