@@ -74,7 +74,9 @@ class RunConfig:
     evaluation: EvaluationConfig = field(default_factory=EvaluationConfig)
     seed: int = 0
     gamma: float = 0.99
-    budget_steps: int = 50_000
+    budget_steps: int = 50_000  # environment transitions of all copies together
+    # copies of the task stepped as one batch, each running its own seeded episodes (1: the plain algorithm)
+    copies: int = 8
     checkpoint_every_episodes: int = 25
     series_name: str = "scratch"
     results_dir: str = "results"
@@ -165,10 +167,15 @@ def validate(cfg: DictConfig) -> None:
         "checkpoint_every_episodes": cfg.checkpoint_every_episodes,
         "torch_threads": cfg.torch_threads,
         "max_learner_mib": cfg.max_learner_mib,
+        "copies": cfg.copies,
     }
     for key, value in positive.items():
         if value <= 0:
             raise ValueError(f"{key} must be a positive integer, got {value}")
+    if cfg.budget_steps % cfg.copies:
+        below = cfg.budget_steps - cfg.budget_steps % cfg.copies
+        raise ValueError(f"budget_steps={cfg.budget_steps} counts transitions of all copies together and must be a "
+                         f"multiple of copies={cfg.copies}: use {below} or {below + cfg.copies}")
     for key, value in {"seed": cfg.seed, "evaluation.start_seed": cfg.evaluation.start_seed}.items():
         if value < 0:
             raise ValueError(f"{key} must be an integer >= 0, got {value}")

@@ -1,8 +1,16 @@
-"""One run: build task, shaping and learner from a config, train, evaluate, record, checkpoint.
+"""One run: build the task's copies and the learner from a config, train, evaluate, record, checkpoint.
 
-The loop treats every learner alike (the protocol in :mod:`qlab.learners.protocol`). Training
-episodes reset from seeds derived from the run seed and the episode index, and checkpoints are
-taken at episode boundaries, so a resumed run repeats the uninterrupted run exactly.
+Training steps ``copies`` copies of the task as one batch (:mod:`qlab.copies`); each copy runs
+its own episodes, each episode reset from a seed derived from the run seed and the episode's
+index (episodes are numbered in the order they start, copies in index order), and no transition
+crosses an episode boundary. The budget counts environment transitions of all copies together;
+a run ends at the first batch that reaches it. The loop treats every learner alike (the protocol
+in :mod:`qlab.learners.protocol`): one ``act`` call and one ``learn`` call per batch step.
+
+Checkpoints hold the learner, the loop's counters, every copy's state and random stream and the
+running returns of unfinished episodes, so a run killed at any checkpoint and resumed repeats
+the uninterrupted run exactly (for qlab's tasks; a foreign gymnasium task's copies cannot be
+saved, so its unfinished episodes start again on resume).
 """
 
 from __future__ import annotations
@@ -12,19 +20,19 @@ import signal
 import sys
 import threading
 import time
-from collections import defaultdict
 from collections.abc import Callable
 from dataclasses import dataclass
 from pathlib import Path
 from typing import Any
 
-import gymnasium as gym
 import numpy as np
 from omegaconf import DictConfig, OmegaConf
 
 from qlab import runfolder
 from qlab.checkpoint import CheckpointError, has_checkpoint, load_checkpoint, save_checkpoint
 from qlab.config import flatten, validate
+from qlab.copies import Copies
+from qlab.evaluation import evaluate
 from qlab.learners import Learner, Transitions
 from qlab.progress import Progress
 from qlab.recording import (
@@ -44,10 +52,12 @@ from qlab.runspec import CHECKPOINT, build_run, config_tree, require_name, run_d
 class LoopState:
     """Position of the training loop, saved with every checkpoint."""
 
-    step: int = 0
-    episode: int = 0
+    step: int = 0  # environment transitions so far, all copies together
+    started: int = 0  # episodes started (the next episode's index)
+    finished: int = 0  # episodes ended (terminated or truncated)
     next_eval: int = 0
     last_eval: int = -1
+    next_checkpoint: int = 0  # checkpoint once this many episodes have ended
     metric_rows: int = 0  # rows of metrics.csv committed with this checkpoint (checked on resume)
     torch_threads: int = 1  # a resume must use the same count to repeat the run exactly
 
@@ -57,41 +67,57 @@ def episode_seed(run_seed: int, episode: int) -> int:
     return int(np.random.SeedSequence([run_seed, episode]).generate_state(1)[0])
 
 
-def evaluate(learner: Learner, env: gym.Env, start_seeds: list[int], gamma: float) -> dict[str, float]:
-    """Greedy episodes from fixed seeded start states, scored on the task's own reward.
+class EpisodeTally:
+    """Running discounted returns and lengths of every copy's current episode (vectorised over copies)."""
 
-    ``env`` is the training env (shaping included): the scores use ``info["base_reward"]``, and
-    ``trained_discounted_return`` is the same episodes' return on the training reward, the number
-    the learner's ``q_start`` (its predicted value of the start state) estimates.
-    """
-    success, disc, undisc, length, q_start, trained = [], [], [], [], [], []
-    for s in start_seeds:
-        obs, _ = env.reset(seed=s)
-        q_start.append(float(learner.value(np.asarray(obs, dtype=np.float32)[None])[0]))
-        done, t, g, g_trained, total, ok = False, 0, 0.0, 0.0, 0.0, False
-        while not done:
-            action = learner.greedy(np.asarray(obs, dtype=np.float32)[None])[0]
-            obs, reward, terminated, truncated, info = env.step(action)
-            base = float(info.get("base_reward", reward))
-            g += gamma**t * base
-            g_trained += gamma**t * float(reward)
-            total += base
-            ok = bool(info.get("success", False))
-            t += 1
-            done = terminated or truncated
-        success.append(ok)
-        disc.append(g)
-        trained.append(g_trained)
-        undisc.append(total)
-        length.append(t)
-    return {
-        "success_rate": float(np.mean(success)),
-        "discounted_return": float(np.mean(disc)),
-        "return": float(np.mean(undisc)),
-        "length": float(np.mean(length)),
-        "q_start": float(np.mean(q_start)),
-        "trained_discounted_return": float(np.mean(trained)),
-    }
+    def __init__(self, n: int, gamma: float):
+        self.gamma = gamma
+        self.length = np.zeros(n, dtype=np.int64)
+        self.trained = np.zeros(n)  # discounted return on the training reward
+        self.base = np.zeros(n)  # discounted return on the task's own reward
+
+    def restart(self, which: np.ndarray) -> None:
+        """Zero the tallies of the copies starting a new episode."""
+        self.length[which], self.trained[which], self.base[which] = 0, 0.0, 0.0
+
+    def add(self, reward: np.ndarray, base_reward: np.ndarray) -> None:
+        """Add one step's rewards of every copy, discounted by ``gamma ** t`` of its own episode."""
+        discount = self.gamma ** self.length
+        self.trained += discount * reward
+        self.base += discount * base_reward
+        self.length += 1
+
+    def state_dict(self) -> dict[str, np.ndarray]:
+        return {"length": self.length.copy(), "trained": self.trained.copy(), "base": self.base.copy()}
+
+    def load_state_dict(self, state: dict[str, np.ndarray]) -> None:
+        self.length[:], self.trained[:], self.base[:] = state["length"], state["trained"], state["base"]
+
+
+class MetricMeans:
+    """Means of the learner's metrics since they were last recorded (sums and counts, checkpointable)."""
+
+    def __init__(self) -> None:
+        self.sums: dict[str, float] = {}
+        self.counts: dict[str, int] = {}
+
+    def add(self, metrics: dict[str, float]) -> None:
+        for name, value in metrics.items():
+            if name != "nonfinite":
+                self.sums[name] = self.sums.get(name, 0.0) + float(value)
+                self.counts[name] = self.counts.get(name, 0) + 1
+
+    def take(self) -> dict[str, float]:
+        """The means, then start afresh."""
+        means = {k: self.sums[k] / self.counts[k] for k in self.sums}
+        self.sums, self.counts = {}, {}
+        return means
+
+    def state_dict(self) -> dict[str, Any]:
+        return {"sums": dict(self.sums), "counts": dict(self.counts)}
+
+    def load_state_dict(self, state: dict[str, Any]) -> None:
+        self.sums, self.counts = dict(state["sums"]), {k: int(v) for k, v in state["counts"].items()}
 
 
 class RunStopped(SystemExit):
@@ -148,27 +174,35 @@ def run_experiment(
     """
     validate(cfg)
     require_name("series_name", cfg.series_name)
-    env, eval_env, learner = build_run(cfg)
+    copies, eval_copies, learner = build_run(cfg)
     run_dir = Path(run_dir)
     run_dir.parent.mkdir(parents=True, exist_ok=True)
     with runfolder.locked(run_dir), StopFlag() as stop:
-        return _run_locked(cfg, run_dir, env, eval_env, learner, bar, on_checkpoint, stop)
+        return _Run(cfg, run_dir, copies, eval_copies, learner, bar, on_checkpoint, stop).execute()
 
 
-def _run_locked(cfg: DictConfig, run_dir: Path, env: gym.Env, eval_env: gym.Env, learner: Learner, bar: bool,
-                on_checkpoint: Callable[[int], None] | None, stop: StopFlag) -> dict:
-    tree = config_tree(cfg)
-    budget, gamma = int(cfg.budget_steps), float(cfg.gamma)  # plain numbers: config lookups are slow in the loop
-    saved, note = _saved_state(run_dir)
-    plan = runfolder.plan(run_dir, tree, budget, None if saved is None else int(saved["loop"]["step"]))
-    notes = [n for n in (note, plan.note) if n]
-    if plan.action == "skip":
-        Progress(run_dir.name, 1, False).close(f"already finished ({plan.summary.get('status')}), skipped")
-        return plan.summary
-    if plan.action == "new":
-        saved = None
-    loop = LoopState()
-    if saved is not None:
+class _Run:
+    """One run inside its locked folder: prepare the folder, train, finish."""
+
+    def __init__(self, cfg: DictConfig, run_dir: Path, copies: Copies, eval_copies: Copies, learner: Learner,
+                 bar: bool, on_checkpoint: Callable[[int], None] | None, stop: StopFlag):
+        self.cfg, self.run_dir, self.copies, self.eval_copies, self.learner = cfg, run_dir, copies, eval_copies, learner
+        self.bar, self.on_checkpoint, self.stop = bar, on_checkpoint, stop
+        self.budget, self.gamma = int(cfg.budget_steps), float(cfg.gamma)  # plain numbers: config lookups are slow
+        self.seed, self.every_eval = int(cfg.seed), int(cfg.evaluation.every_steps)
+        self.every_checkpoint = int(cfg.checkpoint_every_episodes)
+        self.start_seeds = [int(cfg.evaluation.start_seed) + i for i in range(int(cfg.evaluation.episodes))]
+        self.loop = LoopState(torch_threads=int(cfg.torch_threads), next_checkpoint=self.every_checkpoint)
+        self.tally = EpisodeTally(copies.n, self.gamma)
+        self.learned = MetricMeans()
+        self.checkpoints = 0
+        self.latest_success = float("nan")
+
+    # --- folder ---------------------------------------------------------------------------
+
+    def _restore(self, saved: dict[str, Any], notes: list[str]) -> bool:
+        """Load a checkpoint; False (folder moved aside, a note added) if the metrics table does not match it."""
+        cfg, run_dir = self.cfg, self.run_dir
         threads = int(saved["loop"].get("torch_threads", cfg.torch_threads))
         if threads != int(cfg.torch_threads):
             raise runfolder.RunFolderError(
@@ -180,112 +214,146 @@ def _run_locked(cfg: DictConfig, run_dir: Path, env: gym.Env, eval_env: gym.Env,
             moved = runfolder.set_aside(run_dir, "damaged")
             notes.append(f"{run_dir / METRICS} holds {len(recorded)} rows up to step {loop.step:,} but its checkpoint "
                          f"recorded {loop.metric_rows}; the damaged run was moved to {moved} and starts again")
-            loop, saved = LoopState(), None
+            return False
+        self.loop = loop
+        self.learner.load_state_dict(saved["learner"])
+        self.learned.load_state_dict(saved["learned"])
+        if self.copies.savable and "copies" in saved:
+            self.copies.load_state_dict(saved["copies"])
+            self.tally.load_state_dict(saved["episodes"])
         else:
-            learner.load_state_dict(saved["learner"])
-    for line in notes:
-        print(f"{run_dir.name}: {line}", file=sys.stderr)
-    run_dir.mkdir(parents=True, exist_ok=True)
-    digest = run_digest(tree)
-    config_yaml = OmegaConf.to_yaml(cfg, resolve=True)
-    atomic_write_text(run_dir / "config.yaml", config_yaml)
-    atomic_write_text(run_dir / runfolder.OWNER, digest + "\n")
-    start_seeds = [cfg.evaluation.start_seed + i for i in range(cfg.evaluation.episodes)]
-    loop.torch_threads = int(cfg.torch_threads)
+            notes.append(f"resumed at step {loop.step:,}; this task's copies cannot be saved, so their unfinished "
+                         "episodes start again")
+        return True
 
-    recorder = Recorder(run_dir, resume_step=loop.step, tensorboard=cfg.tensorboard)
-    progress = Progress(run_dir.name, budget, bar)
-    if loop.step == 0:
-        recorder.text("config", config_yaml)
-    checkpoints = 0
-    status, diverged_at = "finished", None
+    def execute(self) -> dict:
+        """Skip, resume or start the run; train to the budget; write the summary and the finish marker."""
+        cfg, run_dir = self.cfg, self.run_dir
+        tree = config_tree(cfg)
+        saved, note = _saved_state(run_dir)
+        plan = runfolder.plan(run_dir, tree, self.budget, None if saved is None else int(saved["loop"]["step"]))
+        notes = [n for n in (note, plan.note) if n]
+        if plan.action == "skip":
+            Progress(run_dir.name, 1, False).close(f"already finished ({plan.summary.get('status')}), skipped")
+            return plan.summary
+        if plan.action == "resume" and saved is not None:
+            self._restore(saved, notes)
+        for line in notes:
+            print(f"{run_dir.name}: {line}", file=sys.stderr)
+        run_dir.mkdir(parents=True, exist_ok=True)
+        self.digest = run_digest(tree)
+        config_yaml = OmegaConf.to_yaml(cfg, resolve=True)
+        atomic_write_text(run_dir / "config.yaml", config_yaml)
+        atomic_write_text(run_dir / runfolder.OWNER, self.digest + "\n")
+        self.loop.torch_threads = int(cfg.torch_threads)
+        self.recorder = Recorder(run_dir, resume_step=self.loop.step, tensorboard=cfg.tensorboard)
+        self.progress = Progress(run_dir.name, self.budget, self.bar)
+        if self.loop.step == 0:
+            self.recorder.text("config", config_yaml)
+        status, diverged_at = self._train()
+        return self._finish(tree, status, diverged_at)
 
-    def checkpoint() -> None:
-        nonlocal checkpoints
-        recorder.commit()
-        loop.metric_rows = len(recorder.rows)
-        save_checkpoint(run_dir / CHECKPOINT, {"learner": learner.state_dict(), "loop": dataclasses.asdict(loop)})
-        checkpoints += 1
-        if on_checkpoint is not None:
-            on_checkpoint(checkpoints)
+    # --- training -------------------------------------------------------------------------
 
-    def halt() -> None:
-        """Stop at a signal: keep the last checkpoint, one line, exit 128 + signal."""
-        recorder.close()
-        name = signal.Signals(stop.signum).name
-        progress.close(f"stopped by {name} at step {loop.step:,}; the last checkpoint is kept: "
-                       "run the same command again to resume")
-        raise RunStopped(stop.signum)
+    def _train(self) -> tuple[str, int | None]:
+        """Step every copy until the budget; ``("diverged", step)`` when the learner's numbers stop being finite."""
+        loop, copies, learner, tally = self.loop, self.copies, self.learner, self.tally
+        if loop.step == 0 and loop.last_eval < 0:
+            self._evaluate()
+        obs = None if copies.done.all() else copies.observe()
+        tick, ticked_at = time.perf_counter(), loop.step
+        while loop.step < self.budget:
+            if self.stop.signum is not None:
+                self._halt()
+            if copies.done.any():
+                starting = copies.done.copy()
+                k = int(starting.sum())
+                seeds = [episode_seed(self.seed, loop.started + i) for i in range(k)]
+                loop.started += k
+                obs = copies.reset(starting, seeds)
+                tally.restart(starting)
+            step = copies.step(learner.act(obs))
+            metrics = learner.learn(Transitions(step.obs, step.action, step.reward, step.next_obs,
+                                                step.terminated, step.truncated))
+            loop.step += copies.n
+            tally.add(step.reward, step.base_reward)
+            self.learned.add(metrics)
+            if metrics.get("nonfinite") or not all(np.isfinite(v) for v in metrics.values()):
+                return "diverged", loop.step
+            if loop.step >= loop.next_eval:
+                self._evaluate()
+            ended = step.terminated | step.truncated
+            if ended.any():
+                if not np.all(np.isfinite(learner.value(step.next_obs[ended]))):
+                    return "diverged", loop.step
+                now = time.perf_counter()
+                self._record_episodes(ended, step.success, (loop.step - ticked_at) / max(now - tick, 1e-9))
+                tick, ticked_at = now, loop.step
+                if loop.finished >= loop.next_checkpoint:
+                    self._checkpoint()
+                    loop.next_checkpoint = (loop.finished // self.every_checkpoint + 1) * self.every_checkpoint
+            obs = step.next_obs
+        return "finished", None
 
-    latest = {"success_rate": float("nan")}
+    def _record_episodes(self, ended: np.ndarray, success: np.ndarray, speed: float) -> None:
+        """Episode scalars of the copies that ended on this step (means, and how many), learner means, speed."""
+        loop, tally, recorder = self.loop, self.tally, self.recorder
+        loop.finished += int(ended.sum())
+        recorder.scalars({"discounted_return": float(tally.trained[ended].mean()),
+                          "base_discounted_return": float(tally.base[ended].mean()),
+                          "length": float(tally.length[ended].mean()), "success": float(success[ended].mean()),
+                          "count": float(ended.sum())}, loop.step, "episode/")
+        recorder.scalars(self.learned.take(), loop.step, "learn/")
+        recorder.scalar("speed/steps_per_second", speed, loop.step)
+        self.progress.update(loop.step, f"episode {loop.finished}, evaluated success {self.latest_success:.2f}")
 
-    def run_eval() -> dict[str, float]:
-        result = evaluate(learner, eval_env, start_seeds, gamma)
-        latest.update(result)
-        recorder.scalars(result, loop.step, "eval/")
-        loop.last_eval = loop.step
-        loop.next_eval = loop.step + cfg.evaluation.every_steps
+    def _evaluate(self) -> dict[str, float]:
+        result = evaluate(self.learner, self.eval_copies, self.start_seeds, self.gamma)
+        self.latest_success = result["success_rate"]
+        self.recorder.scalars(result, self.loop.step, "eval/")
+        self.loop.last_eval = self.loop.step
+        self.loop.next_eval = (self.loop.step // self.every_eval + 1) * self.every_eval  # on a fixed grid
         return result
 
-    if loop.step == 0 and loop.last_eval < 0:
-        run_eval()
-    while loop.step < budget and status == "finished":
-        obs, _ = env.reset(seed=episode_seed(cfg.seed, loop.episode))
-        tick = time.perf_counter()
-        learned: dict[str, list[float]] = defaultdict(list)
-        t, train_return, base_return, complete, ok = 0, 0.0, 0.0, False, False
-        while loop.step < budget:
-            if stop.signum is not None:
-                halt()
-            action = learner.act(np.asarray(obs, dtype=np.float32)[None])[0]
-            next_obs, reward, terminated, truncated, info = env.step(action)
-            metrics = learner.learn(Transitions.single(obs, action, reward, next_obs, terminated, truncated))
-            loop.step += 1
-            train_return += gamma**t * float(reward)
-            base_return += gamma**t * float(info.get("base_reward", reward))
-            ok = bool(info.get("success", False))
-            t += 1
-            for name, value in metrics.items():
-                learned[name].append(float(value))
-            if metrics.get("nonfinite") or not all(np.isfinite(v) for v in metrics.values()):
-                status, diverged_at = "diverged", loop.step
-                break
-            if loop.step >= loop.next_eval:
-                run_eval()
-            obs = next_obs
-            if terminated or truncated:
-                complete = True
-                break
-        if status == "finished" and not np.isfinite(learner.value(np.asarray(obs, dtype=np.float32)[None])[0]):
-            status, diverged_at = "diverged", loop.step
-        if complete:
-            recorder.scalars(
-                {"discounted_return": train_return, "base_discounted_return": base_return,
-                 "length": t, "success": float(ok)},
-                loop.step, "episode/",
-            )
-            recorder.scalars({k: float(np.mean(v)) for k, v in learned.items() if k != "nonfinite"},
-                             loop.step, "learn/")
-            recorder.scalar("speed/steps_per_second", t / max(time.perf_counter() - tick, 1e-9), loop.step)
-            loop.episode += 1
-            progress.update(loop.step, f"episode {loop.episode}, evaluated success {latest['success_rate']:.2f}")
-            if loop.episode % cfg.checkpoint_every_episodes == 0:
-                checkpoint()
-    if stop.signum is not None:
-        halt()
-    final = run_eval() if loop.last_eval != loop.step else _last_eval(recorder, loop.step)
-    checkpoint()
-    summary = {"status": status, "steps": loop.step, "episodes": loop.episode, "diverged_at_step": diverged_at,
-               "config_hash": digest, "final": final, "metric_rows": len(recorder.rows),
-               "metrics_sha256": file_digest(run_dir / METRICS)}
-    recorder.hparams(flatten(tree), final)
-    recorder.close()
-    atomic_write_json(run_dir / SUMMARY, summary)
-    atomic_write_text(run_dir / MARKER, digest + "\n")
-    done = f"diverged at step {diverged_at}" if status == "diverged" else (
-        f"success {final['success_rate']:.2f}, discounted return {final['discounted_return']:.3f}")
-    progress.close(done)
-    return summary
+    def _checkpoint(self) -> None:
+        self.recorder.commit()
+        self.loop.metric_rows = len(self.recorder.rows)
+        tree = {"learner": self.learner.state_dict(), "loop": dataclasses.asdict(self.loop),
+                "learned": self.learned.state_dict(), "episodes": self.tally.state_dict()}
+        if self.copies.savable:
+            tree["copies"] = self.copies.state_dict()
+        save_checkpoint(self.run_dir / CHECKPOINT, tree)
+        self.checkpoints += 1
+        if self.on_checkpoint is not None:
+            self.on_checkpoint(self.checkpoints)
+
+    def _halt(self) -> None:
+        """Stop at a signal: keep the last checkpoint, one line, exit 128 + signal."""
+        self.recorder.close()
+        name = signal.Signals(self.stop.signum).name
+        self.progress.close(f"stopped by {name} at step {self.loop.step:,}; the last checkpoint is kept: "
+                            "run the same command again to resume")
+        raise RunStopped(self.stop.signum)
+
+    # --- the end --------------------------------------------------------------------------
+
+    def _finish(self, tree: dict[str, Any], status: str, diverged_at: int | None) -> dict:
+        loop, recorder, run_dir = self.loop, self.recorder, self.run_dir
+        if self.stop.signum is not None:
+            self._halt()
+        final = self._evaluate() if loop.last_eval != loop.step else _last_eval(recorder, loop.step)
+        self._checkpoint()
+        summary = {"status": status, "steps": loop.step, "episodes": loop.finished, "diverged_at_step": diverged_at,
+                   "config_hash": self.digest, "final": final, "metric_rows": len(recorder.rows),
+                   "metrics_sha256": file_digest(run_dir / METRICS)}
+        recorder.hparams(flatten(tree), final)
+        recorder.close()
+        atomic_write_json(run_dir / SUMMARY, summary)
+        atomic_write_text(run_dir / MARKER, self.digest + "\n")
+        done = f"diverged at step {diverged_at}" if status == "diverged" else (
+            f"success {final['success_rate']:.2f}, discounted return {final['discounted_return']:.3f}")
+        self.progress.close(done)
+        return summary
 
 
 def _last_eval(recorder: Recorder, step: int) -> dict[str, float]:

@@ -7,8 +7,8 @@ One module owns the three things the loop, the command line and the report must 
   setting (task, shaping, learner, seed, budget, evaluation, discount) changes the digest.
   ``torch_threads`` changes floating-point bits, not meaning: it is recorded with the run, a
   finished run is skipped whatever its value, and a resume with another value is refused.
-* **building**: the task, its shaping variant and the learner from a config, sizes checked
-  before anything large is allocated.
+* **building**: the task's copies in their shaping variant (training and evaluation) and the
+  learner from a config, sizes checked before anything large is allocated.
 * **restoring**: a run folder's final learner, from its ``config.yaml`` and checkpoint.
 """
 
@@ -25,8 +25,8 @@ from omegaconf import DictConfig, OmegaConf
 
 from qlab.checkpoint import load_checkpoint
 from qlab.config import DEFAULT_MAX_LEARNER_MIB, flatten, to_container
+from qlab.copies import Copies, make_copies
 from qlab.learners import LEARNERS, Learner, build_learner, load_target
-from qlab.shaping import ShapedReward
 from qlab.validation import require_name
 
 #: settings (dotted keys, or a top-level key for all below it) that say where or how a run is
@@ -105,19 +105,15 @@ def make_task(task: DictConfig | dict[str, Any]) -> gym.Env:
         raise ValueError(str(err)) from None
 
 
-def shaped(env: gym.Env, variant: str, gamma: float, progress_scale: float | None) -> gym.Env:
-    """``env`` wrapped in a shaping variant unless ``none``."""
-    return env if variant == "none" else ShapedReward(env, variant, gamma, progress_scale)
-
-
-def make_env(cfg: DictConfig) -> gym.Env:
-    """The run's training environment: its task in its shaping variant; errors prefixed with the config group."""
+def make_task_copies(cfg: DictConfig, n: int) -> Copies:
+    """``n`` copies of the run's task in its shaping variant; errors prefixed with the config group."""
     try:
-        task = make_task(cfg.task)
+        make_task(cfg.task).close()  # a bad task setting is named as one, before shaping is tried
     except ValueError as err:
         raise ValueError(f"task ({cfg.task.id}): {err}") from None
     try:
-        return shaped(task, cfg.shaping.variant, cfg.gamma, cfg.shaping.progress_scale)
+        return make_copies(lambda: make_task(cfg.task), n, cfg.shaping.variant, float(cfg.gamma),
+                           cfg.shaping.progress_scale)
     except ValueError as err:
         raise ValueError(f"shaping: {err}") from None
 
@@ -129,14 +125,15 @@ def _mib(n_bytes: int) -> str:
     return f"{n_bytes / 2**20:.2f} MiB"
 
 
-def check_learner_size(kind: str, settings: dict[str, Any], env: gym.Env, limit_mib: int) -> None:
+def check_learner_size(kind: str, settings: dict[str, Any], observation_space: gym.Space, action_space: gym.Space,
+                       limit_mib: int) -> None:
     """Refuse, before allocation, a learner whose memory would exceed ``limit_mib``, naming the settings to lower."""
     cls, config_cls = (load_target(t) for t in LEARNERS[kind])
     estimate = getattr(cls, "memory_bytes", None)
     if estimate is None:
         return
     config = OmegaConf.to_object(OmegaConf.merge(OmegaConf.structured(config_cls), settings))
-    n_bytes, decided_by = estimate(config, env.observation_space, env.action_space)
+    n_bytes, decided_by = estimate(config, observation_space, action_space)
     if n_bytes > limit_mib * 2**20:
         raise ValueError(
             f"this learner would need {_mib(n_bytes)} on this task ({decided_by}: "
@@ -145,38 +142,46 @@ def check_learner_size(kind: str, settings: dict[str, Any], env: gym.Env, limit_
         )
 
 
-def make_learner(cfg: DictConfig, env: gym.Env) -> Learner:
-    """The run's learner for ``env``, sizes checked first; errors prefixed with ``learner (<kind>)``."""
+def make_learner(cfg: DictConfig, observation_space: gym.Space, action_space: gym.Space, task: Any) -> Learner:
+    """The run's learner for a task's spaces, sizes checked first; errors prefixed with ``learner (<kind>)``.
+
+    ``task``: the bare task (its ``potential`` starts Q for ``shaping.start_at_potential``), or None.
+    """
     settings = to_container(cfg.learner)
     kind = settings.pop("kind")
     try:
-        check_learner_size(kind, settings, env, int(cfg.get("max_learner_mib", DEFAULT_MAX_LEARNER_MIB)))
-        learner = build_learner(kind, settings, env.observation_space, env.action_space, int(cfg.seed))
+        check_learner_size(kind, settings, observation_space, action_space,
+                           int(cfg.get("max_learner_mib", DEFAULT_MAX_LEARNER_MIB)))
+        learner = build_learner(kind, settings, observation_space, action_space, int(cfg.seed))
     except ValueError as err:
         raise ValueError(f"learner ({kind}): {err}") from None
     if cfg.shaping.start_at_potential:
-        start_at_potential(learner, kind, env)
+        start_at_potential(learner, kind, task)
     return learner
 
 
-def start_at_potential(learner: Learner, kind: str, env: gym.Env) -> None:
-    """Set Q(s, a) = Phi(s) before learning (Wiewiora 2003), for learners that support it."""
+def start_at_potential(learner: Learner, kind: str, task: Any) -> None:
+    """Set Q(s, a) = Phi(s) before learning (Wiewiora 2003), for learners and tasks that support it."""
     supported = sorted(k for k, (target, _) in LEARNERS.items() if hasattr(load_target(target), "initialise_from"))
     if not hasattr(learner, "initialise_from"):
         raise ValueError(f"shaping.start_at_potential needs a learner in {supported}, got learner {kind!r}")
-    task = env.unwrapped
     if not hasattr(task, "potential"):
         raise ValueError(f"shaping.start_at_potential needs a task with a potential, got {type(task).__name__}")
     learner.initialise_from(task.potential)
 
 
-def build_run(cfg: DictConfig) -> tuple[gym.Env, gym.Env, Learner]:
-    """Training env, evaluation env and learner of a config; a bad setting raises ``ValueError`` before any work."""
+def build_run(cfg: DictConfig) -> tuple[Copies, Copies, Learner]:
+    """Training copies, evaluation copies (one per start state) and the learner of a config.
+
+    A bad setting raises ``ValueError`` naming it before any work.
+    """
     import torch
 
     torch.set_num_threads(int(cfg.torch_threads))
-    env, eval_env = make_env(cfg), make_env(cfg)
-    return env, eval_env, make_learner(cfg, env)
+    train = make_task_copies(cfg, int(cfg.copies))
+    evaluation = make_task_copies(cfg, int(cfg.evaluation.episodes))
+    learner = make_learner(cfg, train.observation_space, train.action_space, getattr(train, "task", None))
+    return train, evaluation, learner
 
 
 # --- restoring ------------------------------------------------------------------------------
@@ -195,9 +200,12 @@ def load_config(run_dir: Path) -> DictConfig:
 
 
 def restore_learner(run_dir: Path, cfg: DictConfig | None = None) -> tuple[Learner, Any]:
-    """A run's final learner (from its checkpoint) and its unwrapped task; ``ValueError`` naming the file."""
+    """A run's final learner (from its checkpoint) and its bare task; ``ValueError`` naming the file."""
     cfg = load_config(run_dir) if cfg is None else cfg
-    env = make_env(cfg)
-    learner = make_learner(cfg, env)
+    try:
+        task = make_task(cfg.task).unwrapped
+    except ValueError as err:
+        raise ValueError(f"task ({cfg.task.id}): {err}") from None
+    learner = make_learner(cfg, task.observation_space, task.action_space, task)
     learner.load_state_dict(load_checkpoint(Path(run_dir) / CHECKPOINT)["learner"])
-    return learner, env.unwrapped
+    return learner, task

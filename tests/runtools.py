@@ -17,8 +17,8 @@ QLAB_RUN = str(Path(sys.executable).parent / "qlab-run")
 TINY = [
     "task.start_distance_m=[8.0,12.0]",
     "task.max_steps=100",
-    "budget_steps=1500",
-    "evaluation.every_steps=500",
+    "budget_steps=1600",
+    "evaluation.every_steps=400",
     "evaluation.episodes=3",
     "checkpoint_every_episodes=2",
 ]

@@ -118,7 +118,7 @@ def test_two_run_sweep_writes_folders_and_tensorboard_matches_csv(tmp_path):
             assert (run / name).is_file(), name
         assert (run / "checkpoint").is_dir()
         summary = json.loads((run / "summary.json").read_text())
-        assert summary["status"] == "finished" and summary["steps"] == 1500
+        assert summary["status"] == "finished" and summary["steps"] == 1600
         tags = {t for _, t, _ in read_metrics(run)}
         assert {"eval/success_rate", "eval/discounted_return", "eval/return", "eval/length"} <= tags
         assert any(t.startswith("episode/") for t in tags) and any(t.startswith("learn/") for t in tags)
@@ -187,7 +187,7 @@ def run_script(run_dir: Path, n_kill: int, sig: str, overrides: list[str]) -> su
 @pytest.mark.parametrize(("learner", "sig"), [("tabular", "SIGKILL"), ("qnet", "SIGKILL"), ("tabular", "SIGINT"),
                                               ("qnet", "SIGTERM")])
 def test_killed_run_resumes_to_the_uninterrupted_result(tmp_path, learner, sig):
-    overrides = [f"learner={learner}", "learner.warmup_steps=100" if learner == "qnet" else "seed=0", *TINY]
+    overrides = [f"learner={learner}", "learner.warmup_steps=100" if learner == "qnet" else "seed=0", "copies=4", *TINY]
     whole, killed = tmp_path / "whole", tmp_path / "killed"
     assert run_script(whole, 0, sig, overrides).returncode == 0
     stopped = run_script(killed, 3, sig, overrides)  # signalled a little after its 3rd checkpoint
@@ -231,7 +231,7 @@ def test_divergence_is_recorded_and_the_sweep_goes_on(tmp_path):
     assert sorted(runs) == [1e-3, 1e12]
     huge, sane = runs[1e12], runs[1e-3]
     summary = json.loads((huge / "summary.json").read_text())
-    assert summary["status"] == "diverged" and 0 < summary["diverged_at_step"] < 1500
+    assert summary["status"] == "diverged" and 0 < summary["diverged_at_step"] < 1600
     assert (huge / "FINISHED").exists()
     assert json.loads((sane / "summary.json").read_text())["status"] == "finished"
     with (huge / "metrics.csv").open() as fh:
