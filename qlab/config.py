@@ -76,7 +76,7 @@ class RunConfig:
     gamma: float = 0.99
     budget_steps: int = 50_000  # environment transitions of all copies together
     # copies of the task stepped as one batch, each running its own seeded episodes (1: the plain algorithm)
-    copies: int = 8
+    copies: int = 16
     checkpoint_every_episodes: int = 25
     series_name: str = "scratch"
     results_dir: str = "results"

@@ -14,7 +14,7 @@ def evaluate(learner: Learner, copies: Copies, start_seeds: Sequence[int], gamma
     """Greedy episodes from seeded starts (copy ``i`` reset with ``start_seeds[i]``), scored on the task's own reward.
 
     Every step asks the learner for the greedy actions of all still-running copies in one
-    ``greedy`` call. Returns the means over episodes of: ``success_rate`` (success flag of the
+    ``greedy`` call. Returns the means over episodes of: ``success`` (success flag of the
     last step), ``discounted_return`` and ``return`` (on ``base_reward``), ``length``, ``q_start``
     (``learner.value`` of the start observations) and ``trained_discounted_return`` (on the
     training reward, shaping included: the number ``q_start`` estimates).
@@ -42,7 +42,7 @@ def evaluate(learner: Learner, copies: Copies, start_seeds: Sequence[int], gamma
         running[rows] = ~(step.terminated | step.truncated)
         t += 1
     return {
-        "success_rate": float(np.mean(success)),
+        "success": float(np.mean(success)),
         "discounted_return": float(np.mean(discounted)),
         "return": float(np.mean(total)),
         "length": float(np.mean(length)),

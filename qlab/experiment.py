@@ -95,7 +95,7 @@ class EpisodeTally:
 
 
 class MetricMeans:
-    """Means of the learner's metrics since they were last recorded (sums and counts, checkpointable)."""
+    """Means of the learner's metrics since they were last recorded, at each evaluation (checkpointable)."""
 
     def __init__(self) -> None:
         self.sums: dict[str, float] = {}
@@ -281,35 +281,36 @@ class _Run:
             if metrics.get("nonfinite") or not all(np.isfinite(v) for v in metrics.values()):
                 return "diverged", loop.step
             if loop.step >= loop.next_eval:
+                now = time.perf_counter()
+                self.recorder.scalars(self.learned.take(), loop.step, "learn/")
+                self.recorder.scalar("speed/steps_per_second", (loop.step - ticked_at) / max(now - tick, 1e-9),
+                                     loop.step)
                 self._evaluate()
+                tick, ticked_at = time.perf_counter(), loop.step
             ended = step.terminated | step.truncated
             if ended.any():
                 if not np.all(np.isfinite(learner.value(step.next_obs[ended]))):
                     return "diverged", loop.step
-                now = time.perf_counter()
-                self._record_episodes(ended, step.success, (loop.step - ticked_at) / max(now - tick, 1e-9))
-                tick, ticked_at = now, loop.step
+                self._record_episodes(ended, step.success)
                 if loop.finished >= loop.next_checkpoint:
                     self._checkpoint()
                     loop.next_checkpoint = (loop.finished // self.every_checkpoint + 1) * self.every_checkpoint
             obs = step.next_obs
         return "finished", None
 
-    def _record_episodes(self, ended: np.ndarray, success: np.ndarray, speed: float) -> None:
-        """Episode scalars of the copies that ended on this step (means, and how many), learner means, speed."""
+    def _record_episodes(self, ended: np.ndarray, success: np.ndarray) -> None:
+        """Episode scalars of the copies that ended on this step: means, and how many ended."""
         loop, tally, recorder = self.loop, self.tally, self.recorder
         loop.finished += int(ended.sum())
         recorder.scalars({"discounted_return": float(tally.trained[ended].mean()),
                           "base_discounted_return": float(tally.base[ended].mean()),
                           "length": float(tally.length[ended].mean()), "success": float(success[ended].mean()),
                           "count": float(ended.sum())}, loop.step, "episode/")
-        recorder.scalars(self.learned.take(), loop.step, "learn/")
-        recorder.scalar("speed/steps_per_second", speed, loop.step)
         self.progress.update(loop.step, f"episode {loop.finished}, evaluated success {self.latest_success:.2f}")
 
     def _evaluate(self) -> dict[str, float]:
         result = evaluate(self.learner, self.eval_copies, self.start_seeds, self.gamma)
-        self.latest_success = result["success_rate"]
+        self.latest_success = result["success"]
         self.recorder.scalars(result, self.loop.step, "eval/")
         self.loop.last_eval = self.loop.step
         self.loop.next_eval = (self.loop.step // self.every_eval + 1) * self.every_eval  # on a fixed grid
@@ -351,7 +352,7 @@ class _Run:
         atomic_write_json(run_dir / SUMMARY, summary)
         atomic_write_text(run_dir / MARKER, self.digest + "\n")
         done = f"diverged at step {diverged_at}" if status == "diverged" else (
-            f"success {final['success_rate']:.2f}, discounted return {final['discounted_return']:.3f}")
+            f"success {final['success']:.2f}, discounted return {final['discounted_return']:.3f}")
         self.progress.close(done)
         return summary
 

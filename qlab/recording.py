@@ -82,7 +82,9 @@ class Recorder:
         if tensorboard:
             from torch.utils.tensorboard import SummaryWriter
 
-            self.writer = SummaryWriter(str(self.run_dir / "tb"), purge_step=resume_step + 1 if resume_step else None)
+            # events queue in memory and reach the file at each commit (a checkpoint), never one by one
+            self.writer = SummaryWriter(str(self.run_dir / "tb"), purge_step=resume_step + 1 if resume_step else None,
+                                        max_queue=100_000, flush_secs=3600)
 
     def scalar(self, tag: str, value: float, step: int) -> None:
         """Record one scalar at an environment step."""

@@ -44,7 +44,7 @@ def one_at_a_time(learner: Learner, env: gym.Env, start_seeds: list[int], gamma:
         undisc.append(total)
         length.append(t)
     return {
-        "success_rate": float(np.mean(success)),
+        "success": float(np.mean(success)),
         "discounted_return": float(np.mean(disc)),
         "return": float(np.mean(undisc)),
         "length": float(np.mean(length)),

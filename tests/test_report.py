@@ -32,7 +32,7 @@ from qlab.experiment import run_experiment
 from qlab.recording import file_digest
 
 TINY = ["task.start_distance_m=[8,12]", "budget_steps=1500", "evaluation.every_steps=500", "evaluation.episodes=3",
-        "learner=tabular", "tensorboard=false"]
+        "learner=tabular", "tensorboard=false", "copies=1"]
 ARMS = {"none": "none", "potential": "potential", "potential_start": START_AT_POTENTIAL_ARM}
 PNG_SIGNATURE = b"\x89PNG\r\n\x1a\n"  # PNG specification (W3C / RFC 2083), section 3.1
 
@@ -158,7 +158,7 @@ def test_final_table_is_the_iqm_of_the_summaries(report, study):
     rows = table(section((out / "report.md").read_text(), "Final performance"))
     by_arm = {row[1]: row for row in rows}
     for folder_name, arm in ARMS.items():
-        success = np.array(list(finals(study, folder_name, "success_rate").values()))
+        success = np.array(list(finals(study, folder_name, "success").values()))
         ret = np.array(list(finals(study, folder_name, "discounted_return").values()))
         # scipy.stats.trim_mean(x, 0.25) is the interquartile mean (Agarwal et al. 2021)
         assert stats.iqm(success) == pytest.approx(trim_mean(success, 0.25))
@@ -177,7 +177,7 @@ def test_potential_is_set_against_q_started_at_phi(report, study):
     assert [row[0] for row in rows] == ["tabular"]
     row = rows[0]
     intervals = []
-    for column, key in ((1, "success_rate"), (2, "discounted_return")):
+    for column, key in ((1, "success"), (2, "discounted_return")):
         shaped = np.array(list(finals(study, "potential", key).values()))
         start = np.array(list(finals(study, "potential_start", key).values()))
         p = stats.probability_of_improvement(shaped, start)
@@ -187,7 +187,7 @@ def test_potential_is_set_against_q_started_at_phi(report, study):
         low, high = stats.probability_of_improvement_ci(shaped, start, 0.95, seed=0)
         assert row[column] == f"{p:.2f} [{low:.2f}, {high:.2f}]"
         intervals.append((low, high))
-        if key == "success_rate":
+        if key == "success":
             # scipy.stats.trim_mean(x, 0.25) is the interquartile mean (Agarwal et al. 2021)
             a, b = trim_mean(shaped, 0.25), trim_mean(start, 0.25)
             assert row[5] == f"{a:.2f} - {b:.2f} = {a - b:+.2f}"
@@ -224,7 +224,7 @@ def test_diverged_and_crashed_runs_count_as_failures(study, tmp_path):
     broken = Path(shutil.copytree(study, tmp_path / "broken"))
     summary_file = broken / "shaping=potential,seed=1" / "summary.json"
     summary = json.loads(summary_file.read_text())
-    assert summary["final"]["success_rate"] > 0  # the edit below must change the score
+    assert summary["final"]["success"] > 0  # the edit below must change the score
     summary.update(status="diverged", diverged_at_step=1000)
     summary_file.write_text(json.dumps(summary))
     (broken / "shaping=none,seed=0" / "FINISHED").unlink()
@@ -235,14 +235,14 @@ def test_diverged_and_crashed_runs_count_as_failures(study, tmp_path):
     assert runs["potential"][2:7] == ["2", "0, 1", "1", "1", "0"]  # reported, seeds, finished, diverged, crashed
     assert runs["none"][2:7] == ["2", "0, 1", "1", "0", "1"]
     final = {row[1]: row for row in table(section(markdown, "Final performance"))}
-    success = np.array(list(finals(broken, "potential", "success_rate").values()))
+    success = np.array(list(finals(broken, "potential", "success").values()))
     assert success[1] == 0.0
     assert final["potential"][3].split(" [")[0] == f"{stats.iqm(success):.2f}"
     # the learning curve drops to 0 from the failure step on
     run = next(r for r in load_study(broken).runs if r.status == "diverged")
     steps = np.array([0, 500, 1000, 1500])
-    curve = eval_matrix([run], "success_rate", steps)[0]
-    recorded = dict(zip(*run.evals["success_rate"], strict=True))
+    curve = eval_matrix([run], "success", steps)[0]
+    recorded = dict(zip(*run.evals["success"], strict=True))
     assert curve[:2].tolist() == [recorded[0], recorded[500]]
     assert curve[2:].tolist() == [0.0, 0.0]
 
@@ -260,7 +260,7 @@ def test_sweep_reports_each_arm_on_seeds_it_was_not_chosen_on(sweep):
     scores = {}
     for alpha in ("0.05", "0.5"):
         summaries = [json.loads((sweep / f"alpha={alpha},seed={s}" / "summary.json").read_text()) for s in (0, 1)]
-        scores[alpha] = (stats.iqm([x["final"]["success_rate"] for x in summaries]),
+        scores[alpha] = (stats.iqm([x["final"]["success"] for x in summaries]),
                          stats.iqm([x["final"]["discounted_return"] for x in summaries]))
     winner = max(sorted(scores), key=lambda a: scores[a])
     assert row[7] == f"learner.step_size.start={float(winner)!r}"
@@ -278,7 +278,7 @@ def read_eval(run: Path, tag: str) -> dict[int, float]:
 
 def first_reach(run: Path, threshold: float = 0.5) -> int | None:
     """First evaluation step with success rate >= threshold, read from metrics.csv; None if never reached."""
-    return min((s for s, v in read_eval(run, "success_rate").items() if v >= threshold), default=None)
+    return min((s for s, v in read_eval(run, "success").items() if v >= threshold), default=None)
 
 
 def shift_returns(run: Path, by: float) -> None:
@@ -321,11 +321,11 @@ def test_task_settings_get_their_own_reports_and_one_table_across(delay, monkeyp
     for arm, row in rows.items():
         for column, delay_name in enumerate(DELAYS):
             runs = sorted(delay.glob(f"delay={delay_name},shaping={arm},seed=*"))
-            success = [json.loads((r / "summary.json").read_text())["final"]["success_rate"] for r in runs]
+            success = [json.loads((r / "summary.json").read_text())["final"]["success"] for r in runs]
             # scipy.stats.trim_mean(x, 0.25) is the interquartile mean (Agarwal et al. 2021)
             assert row[2 + 2 * column] == f"{trim_mean(success, 0.25):.2f}" == f"{stats.iqm(success):.2f}"
             # first evaluation with success >= 0.5, a run that never reaches it at the 1,000-step budget
-            first = [min((s for s, v in read_eval(r, "success_rate").items() if v >= 0.5), default=None) for r in runs]
+            first = [min((s for s, v in read_eval(r, "success").items() if v >= 0.5), default=None) for r in runs]
             median = f"{np.median([1000 if f is None else f for f in first]):,.0f}"
             censored = sum(f is None for f in first)
             assert row[3 + 2 * column] == (f">= {median}" if 2 * censored >= len(runs) else median)
@@ -363,12 +363,12 @@ def test_failures_score_the_worst_return_of_their_task_setting(delay, tmp_path):
     assert worst_final < 0.0  # scoring the failure 0 would flatter it
     runs = {r.name: r for r in load_study(broken).runs}
     run = runs[diverged.name]
-    assert run.final["success_rate"] == 0.0
+    assert run.final["success"] == 0.0
     assert run.final["discounted_return"] == pytest.approx(worst_final)
     assert runs[crashed.name].final["discounted_return"] == pytest.approx(worst_final)
     curve = eval_matrix([run], "discounted_return", np.array([0, 500, 1000]))[0]
     assert curve.tolist() == pytest.approx([read_eval(diverged, "discounted_return")[0], worst[500], worst[1000]])
-    assert eval_matrix([run], "success_rate", np.array([500, 1000]))[0].tolist() == [0.0, 0.0]
+    assert eval_matrix([run], "success", np.array([500, 1000]))[0].tolist() == [0.0, 0.0]
     assert main([str(broken), "--no-diagnostics"]) == 0
     final = {row[1]: row for row in table(section((broken / DELAYS["near"][1] / "report.md").read_text(),
                                                   "Final performance"))}
@@ -419,7 +419,7 @@ def test_hostile_names_come_out_as_text_in_a_real_report(study, tmp_path):
     assert_inert(page)
     assert all(attrs.get("href") is None for attrs, _ in page.find("a"))
     assert page.find("h1") == [({}, f"Comparison report: {HOSTILE_STUDY}")]
-    assert f"Folders without a config.yaml, not read as runs: {HOSTILE_FOLDER}." in [t for _, t in page.find("li")]
+    assert f"Folders without a readable config.yaml, not read as runs: {HOSTILE_FOLDER}." in [t for _, t in page.find("li")]
     cells = [t for _, t in page.find("td")]
     rows = [cells[i : i + 8] for i in range(0, 8 * len(ARMS), 8)]  # the Runs table comes first, 8 cells a row
     assert {row[1]: row[7] for row in rows} == {ARMS[a]: f"learner.note={note!r}" for a, note in HOSTILE_NOTES.items()}
@@ -444,7 +444,7 @@ def test_a_hostile_study_name_links_back_as_text(delay, tmp_path):
 
 LQ_TINY = ["task=linear_quadratic", "learner=lstdq", "learner.features=quadratic", "learner.refit_every=250",
            "task.max_steps=100", "gamma=0.95", "budget_steps=1000", "evaluation.every_steps=500",
-           "evaluation.episodes=3", "tensorboard=false"]
+           "evaluation.episodes=3", "tensorboard=false", "copies=4"]
 
 
 def test_lq_study_gets_the_closed_form_section_with_maps(tmp_path, monkeypatch):

@@ -15,6 +15,7 @@ import sys
 import textwrap
 from pathlib import Path
 
+import numpy as np
 import pytest
 from runtools import QLAB_RUN, TINY, compose_run, measured, shell
 
@@ -22,6 +23,7 @@ from qlab import runfolder
 from qlab.compare.markup import md_literal
 from qlab.compare.runs import load_study
 from qlab.config import override_problem
+from qlab.recording import file_digest
 from qlab.runspec import STORAGE_KEYS, build_run, config_tree, run_digest, run_name
 
 SERIES = "safe"
@@ -332,3 +334,20 @@ def test_ctrl_c_stops_a_parallel_sweep_once_without_traceback(tmp_path):
     assert "Traceback" not in done.stderr, done.stderr
     assert done.stderr.count("qlab-run: interrupted") == 1
     assert not any((run / "FINISHED").exists() for run in runs_of(tmp_path))
+
+
+def test_report_reads_run_folders_written_with_the_old_names(tmp_path):
+    shell([f"series_name={SERIES}", f"results_dir={tmp_path}", *TINY], tmp_path)
+    (run,) = runs_of(tmp_path)
+    fresh = load_study(tmp_path / SERIES).runs[0]
+    metrics = run / "metrics.csv"
+    metrics.write_text(metrics.read_text().replace("eval/success,", "eval/success_rate,"))
+    summary = json.loads((run / "summary.json").read_text())
+    summary["final"]["success_rate"] = summary["final"].pop("success")
+    summary["metrics_sha256"] = file_digest(metrics)
+    (run / "summary.json").write_text(json.dumps(summary))
+    config = run / "config.yaml"
+    config.write_text(config.read_text().replace("series_name:", "study_name:"))
+    old = load_study(tmp_path / SERIES).runs[0]
+    assert old.status == "finished" and old.final == fresh.final
+    np.testing.assert_array_equal(old.evals["success"][1], fresh.evals["success"][1])

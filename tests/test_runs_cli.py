@@ -120,7 +120,7 @@ def test_two_run_sweep_writes_folders_and_tensorboard_matches_csv(tmp_path):
         summary = json.loads((run / "summary.json").read_text())
         assert summary["status"] == "finished" and summary["steps"] == 1600
         tags = {t for _, t, _ in read_metrics(run)}
-        assert {"eval/success_rate", "eval/discounted_return", "eval/return", "eval/length"} <= tags
+        assert {"eval/success", "eval/discounted_return", "eval/return", "eval/length"} <= tags
         assert any(t.startswith("episode/") for t in tags) and any(t.startswith("learn/") for t in tags)
         assert_tensorboard_matches_csv(run)
         assert (run / "tb" / "hparams").is_dir()

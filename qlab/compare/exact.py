@@ -74,7 +74,7 @@ def _restored(runs: list[Run], label: str, notes: list[str]) -> list[tuple[Run, 
 
 def _representative(runs: list[Run]) -> Run:
     """The median run by final success (then final discounted return, then seed)."""
-    ranked = sorted(runs, key=lambda r: (r.final["success_rate"], r.final["discounted_return"], r.seed))
+    ranked = sorted(runs, key=lambda r: (r.final["success"], r.final["discounted_return"], r.seed))
     return ranked[(len(ranked) - 1) // 2]
 
 

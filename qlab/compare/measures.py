@@ -122,10 +122,10 @@ def _overestimation(runs: list[Run], steps: np.ndarray, seed: int) -> Band | Non
 
 def arm_measures(runs: list[Run], steps: np.ndarray, threshold: float, seed: int = 0) -> ArmMeasures:
     """Measures of one arm's reported runs on the evaluation ``steps`` grid."""
-    success = eval_matrix(runs, "success_rate", steps)
+    success = eval_matrix(runs, "success", steps)
     ret = eval_matrix(runs, "discounted_return", steps)
     keep = np.all(np.isfinite(success), axis=0) & np.all(np.isfinite(ret), axis=0)
-    final_success = np.array([r.final["success_rate"] for r in runs])
+    final_success = np.array([r.final["success"] for r in runs])
     final_return = np.array([r.final["discounted_return"] for r in runs])
     budget = max(r.budget for r in runs)
     first, reached = stats.steps_to_threshold(steps[keep], success[:, keep], threshold, budget)

@@ -252,10 +252,11 @@ def performance_lines(
               "|---|---|---|---|---|---|---|"]
     lines += [f"{_row_start(lr, a)} {m.n_runs} | {int(m.reached.sum())} | {m.n_censored} | {m.budget:,.0f} | "
               f"{median_steps(m)} |" for lr, a, m in rows]
-    lines += ["", "## Performance profiles", "",
-              "Fraction of runs whose final success rate exceeds tau, with a 95% bootstrap band.", "",
-              figures.save_figure(figures.band_figure(panels("profile"), "tau (final success rate threshold)",
-                                                      "fraction of runs with final success > tau", ylim=(-0.03, 1.03)),
+    lines += ["", "## Share of runs above a success threshold", "",
+              "For every threshold on the final success, the share of runs that end above it, with a 95% "
+              "bootstrap band.", "",
+              figures.save_figure(figures.band_figure(panels("profile"), "threshold on final success",
+                                                      "share of runs above the threshold", ylim=(-0.03, 1.03)),
                                   out, "profiles.png"),
               "", "## Overestimation", "",
               "Predicted value of the start states (max over actions of the learned Q, averaged) minus the discounted "

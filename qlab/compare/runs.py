@@ -39,8 +39,10 @@ from qlab.runspec import is_storage_key, load_config, run_digest
 
 #: statuses of runs that did not finish cleanly and did not diverge (counted together as crashed)
 UNFINISHED = ("crashed", "damaged")
+#: evaluation names written by older versions -> today's (``eval/success_rate`` became ``eval/success``)
+LEGACY_NAMES = {"success_rate": "success"}
 #: the scores a failed run loses from its failure step on (see the module docstring)
-SCORES = ("success_rate", "discounted_return")
+SCORES = ("success", "discounted_return")
 #: the failure-score rule in one sentence, as the report states it
 FAILURE_RULE = ("from its failure step on, a diverged or crashed run scores success 0 and, as discounted return, "
                 "the lower of 0 and the worst return any run of the same task setting showed at that evaluation "
@@ -191,7 +193,8 @@ def load_run(path: Path) -> Run:
     by_tag: dict[str, list[tuple[int, float]]] = {}
     for step, tag, value in rows:
         if tag.startswith("eval/"):
-            by_tag.setdefault(tag.removeprefix("eval/"), []).append((step, value))
+            name = tag.removeprefix("eval/")
+            by_tag.setdefault(LEGACY_NAMES.get(name, name), []).append((step, value))
     evals = {}
     for tag, pairs in by_tag.items():
         steps, values = np.array(pairs, dtype=np.float64).T
@@ -204,7 +207,7 @@ def load_run(path: Path) -> Run:
         failure_step = max((s for s, _, _ in rows), default=-1) + 1
     elif status == "damaged":
         failure_step = 0
-    final = dict(summary["final"]) if status == "finished" else {}
+    final = {LEGACY_NAMES.get(k, k): v for k, v in summary["final"].items()} if status == "finished" else {}
     if status != "finished":
         final.update({tag: 0.0 for tag in SCORES})
     return Run(path.name, path, config, status, failure_step, final, evals,
@@ -253,7 +256,7 @@ def score_failures(runs: list[Run]) -> None:
         for run in group:
             if run.failed:
                 run.failure_return = (grid, worst)
-                run.final.update(success_rate=0.0, discounted_return=worst_final)
+                run.final.update(success=0.0, discounted_return=worst_final)
 
 
 def load_study(folder: str | Path) -> Study:
@@ -310,7 +313,7 @@ def _held(steps: np.ndarray, values: np.ndarray, grid: np.ndarray, before: float
 def eval_steps(runs: list[Run]) -> np.ndarray:
     """The evaluation steps of the finished runs (all runs if none finished), sorted and unique."""
     source = [r for r in runs if not r.failed] or runs
-    steps = [r.evals["success_rate"][0] for r in source if "success_rate" in r.evals]
+    steps = [r.evals["success"][0] for r in source if "success" in r.evals]
     if not steps:
         return np.array([0], dtype=np.int64)
     return np.unique(np.concatenate(steps))

@@ -78,7 +78,7 @@ def split_seeds(seeds: list[int], selection: list[int] | None) -> tuple[list[int
 
 
 def _score(runs: list[Run]) -> tuple[float, float]:
-    success = [r.final["success_rate"] for r in runs]
+    success = [r.final["success"] for r in runs]
     ret = [r.final["discounted_return"] for r in runs]
     return float(iqm(success)), float(iqm(ret))
 

@@ -123,6 +123,7 @@ class TaskBatch:
         self.gamma = float(gamma)
         self.progress_scale = task.default_progress_scale if progress_scale is None else float(progress_scale)
         self.generators: list[np.random.Generator | None] = [None] * self.n
+        self.streams = CopyStreams(self.generators)  # every copy's stream; sees the list's updates in place
         self.state: np.ndarray | None = None  # (N, state_dim), allocated by the first reset
         self.elapsed = np.zeros(self.n, dtype=np.int64)
         self.done = np.ones(self.n, dtype=bool)
@@ -168,18 +169,20 @@ class TaskBatch:
         Returns the transitions of the active copies, in copy order. Stepping a copy that is
         ``done`` (or never reset) raises ``RuntimeError``.
         """
-        mask = copy_mask(self.n, active)
-        rows = np.flatnonzero(mask)
-        if rows.size == 0:
+        every = active is None
+        rows = slice(None) if every else np.flatnonzero(copy_mask(self.n, active))
+        count = self.n if every else rows.size
+        if count == 0:
             raise ValueError("step needs at least one active copy")
         if self.done[rows].any():
             raise RuntimeError("some active copies have no running episode; reset them before stepping")
         action = np.asarray(action)
-        if action.shape[:1] != (rows.size,):
-            raise ValueError(f"step needs one action per active copy ({rows.size}), got shape {action.shape}")
+        if action.shape[:1] != (count,):
+            raise ValueError(f"step needs one action per active copy ({count}), got shape {action.shape}")
         state = self.state[rows]
         obs = self.task.observe(state)
-        out = self.task.batch_step(state, self.task.controls(action), CopyStreams([self.generators[i] for i in rows]))
+        streams = self.streams if every else CopyStreams([self.generators[i] for i in rows])
+        out = self.task.batch_step(state, self.task.controls(action), streams)
         self.state[rows] = out.next_state
         self.elapsed[rows] += 1
         next_obs = self.task.observe(out.next_state)
@@ -236,7 +239,7 @@ class TaskBatch:
                 "uinteger": int(arrays["uinteger"][i]),
             }
             generators.append(g)
-        self.generators = generators
+        self.generators[:] = generators
         self.state = states.astype(np.float64, copy=True)
         self.elapsed = arrays["elapsed"].astype(np.int64, copy=True)
         self.done = arrays["done"].astype(bool, copy=True)
