@@ -7,7 +7,7 @@ All measurements run side by side in this one process; read the ratios, not the 
    default ``copies`` and at ``copies=1``, against a bare scalar Python loop of the same algorithm
    written here (the same drag physics with 4 sub-steps, a 40 x 40 table, epsilon-greedy, one
    Q-learning update per transition). Targets: >= 1.0 at the default ``copies``; ``copies=1`` at
-   least 3x the loop this replaced (which ran at 0.04x of the bare loop, so >= 0.12x).
+   least 3x the loop this replaced (about 1,800 transitions per second on these machines).
 2. Learning per transition: median environment steps to an evaluated success of 0.5 on the demo
    setting at the default ``copies`` within 1.25x of ``copies=1`` (10 seeds, bootstrap interval
    of the ratio of medians), and median wall time to it at least 5x shorter.
@@ -36,7 +36,7 @@ import qlab.experiment as experiment
 from qlab.config import CONFIG_DIR, register_configs
 from qlab.evaluation import evaluate
 from qlab.recording import read_metrics
-from qlab.runspec import build_run, make_task_copies
+from qlab.runspec import build_run, make_task_copies, restore_learner
 from qlab.tasks.dock import Dock
 
 DEMO = ["task.start_distance_m=[15.0,25.0]", "task.max_steps=200", "evaluation.episodes=10", "tensorboard=true"]
@@ -209,7 +209,7 @@ def main() -> None:
     t_single, _ = timed_run([*DEMO, f"budget_steps={budget}", "evaluation.every_steps=2000", "copies=1"])
     t_bare = bare_tabular(budget, 0)
     rows.append(("tabular loop, default copies / bare scalar loop", t_bare / t_default, ">= 1.0"))
-    rows.append(("tabular loop, copies=1 / bare scalar loop", t_bare / t_single, ">= 0.12 (3x the old 0.04)"))
+    rows.append(("tabular loop, copies=1 / bare scalar loop", t_bare / t_single, "3x the replaced loop"))
     print(f"transitions/s: bare {budget / t_bare:,.0f}, default copies {budget / t_default:,.0f}, "
           f"copies=1 {budget / t_single:,.0f}", flush=True)
 
@@ -242,7 +242,7 @@ def main() -> None:
 
     qnet = [*DEMO, "learner=qnet", "budget_steps=8000", "evaluation.every_steps=2000"]
     t_loop, run = timed_run(qnet)
-    updates = max(v for _, tag, v in read_metrics(run) if tag == "learn/updates")
+    updates = restore_learner(run)[0].updates
     t_bare_q, bare_updates = bare_qnet(8000, 0, compose_run(qnet))
     rows.append((f"Q-network loop / bare torch loop ({int(updates)} vs {bare_updates} updates)", t_bare_q / t_loop,
                  ">= 0.8"))

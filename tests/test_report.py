@@ -419,7 +419,8 @@ def test_hostile_names_come_out_as_text_in_a_real_report(study, tmp_path):
     assert_inert(page)
     assert all(attrs.get("href") is None for attrs, _ in page.find("a"))
     assert page.find("h1") == [({}, f"Comparison report: {HOSTILE_STUDY}")]
-    assert f"Folders without a readable config.yaml, not read as runs: {HOSTILE_FOLDER}." in [t for _, t in page.find("li")]
+    notes = [t for _, t in page.find("li")]
+    assert f"Folders without a readable config.yaml, not read as runs: {HOSTILE_FOLDER}." in notes
     cells = [t for _, t in page.find("td")]
     rows = [cells[i : i + 8] for i in range(0, 8 * len(ARMS), 8)]  # the Runs table comes first, 8 cells a row
     assert {row[1]: row[7] for row in rows} == {ARMS[a]: f"learner.note={note!r}" for a, note in HOSTILE_NOTES.items()}
