@@ -35,7 +35,7 @@ register_configs()
 
 @hydra.main(config_path=str(CONFIG_DIR), config_name="config", version_base="1.3")
 def _app(cfg: DictConfig) -> dict:
-    from qlab.experiment import run_experiment
+    from qlab.experiment import RunStopped, run_experiment
 
     hc = HydraConfig.get()
     sweep = hc.mode == RunMode.MULTIRUN
@@ -43,6 +43,10 @@ def _app(cfg: DictConfig) -> dict:
         series = require_name("series_name", cfg.series_name)
         run_dir = Path(cfg.results_dir) / series / run_name(list(hc.overrides.task))
         return run_experiment(cfg, run_dir, bar=not sweep)
+    except RunStopped as stop:  # in a sweep the worker lives on; the launcher's own Ctrl-C ends the command
+        if not sweep:
+            raise
+        return {"status": "stopped", "signal": stop.signum}
     except ValueError as err:  # a setting no schema could catch, or a folder that may not be written
         message = str(err) if isinstance(err, RunFolderError) else f"invalid setting: {err}"
         if not sweep:

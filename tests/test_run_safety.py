@@ -330,7 +330,7 @@ def test_ctrl_c_stops_a_parallel_sweep_once_without_traceback(tmp_path):
     done = subprocess.run([QLAB_RUN, *args], cwd=tmp_path, env=env, capture_output=True, text=True, timeout=600,
                           start_new_session=True)
     assert (tmp_path / "sent").exists()
-    assert done.returncode == 130, done.stderr
+    assert done.returncode == 130, done.stdout + done.stderr
     assert "Traceback" not in done.stderr, done.stderr
     assert done.stderr.count("qlab-run: interrupted") == 1
     assert not any((run / "FINISHED").exists() for run in runs_of(tmp_path))
