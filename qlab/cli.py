@@ -17,6 +17,7 @@ checkpoints, and exits 130 / 143.
 
 from __future__ import annotations
 
+import os
 import signal
 import sys
 from pathlib import Path
@@ -31,6 +32,10 @@ from qlab.runfolder import RunFolderError
 from qlab.runspec import require_name, run_name
 
 register_configs()
+#: pid of the process that runs ``qlab-run`` (launcher workers are other processes)
+_LAUNCHER: list[int] = []
+#: signals that stopped a run in this worker process (it then starts no further run)
+_STOPPED: list[int] = []
 
 
 @hydra.main(config_path=str(CONFIG_DIR), config_name="config", version_base="1.3")
@@ -39,13 +44,18 @@ def _app(cfg: DictConfig) -> dict:
 
     hc = HydraConfig.get()
     sweep = hc.mode == RunMode.MULTIRUN
+    if _STOPPED:  # this worker was signalled during an earlier run of the sweep
+        return {"status": "not started", "signal": _STOPPED[0]}
     try:
         series = require_name("series_name", cfg.series_name)
         run_dir = Path(cfg.results_dir) / series / run_name(list(hc.overrides.task))
         return run_experiment(cfg, run_dir, bar=not sweep)
-    except RunStopped as stop:  # in a sweep the worker lives on; the launcher's own Ctrl-C ends the command
+    except RunStopped as stop:
         if not sweep:
             raise
+        if os.getpid() == _LAUNCHER[0]:  # a serial sweep: stop launching the next runs
+            raise KeyboardInterrupt from None
+        _STOPPED.append(stop.signum)  # a worker process lives on, starts no further run, and the launcher ends
         return {"status": "stopped", "signal": stop.signum}
     except ValueError as err:  # a setting no schema could catch, or a folder that may not be written
         message = str(err) if isinstance(err, RunFolderError) else f"invalid setting: {err}"
@@ -60,9 +70,20 @@ def run() -> None:
     problem = override_problem(sys.argv[1:])
     if problem is not None:
         raise SystemExit(f"qlab-run: {problem}")
+    _LAUNCHER[:] = [os.getpid()]
+    received: list[int] = []
+
+    def interrupt(signum: int, frame: object) -> None:  # recorded, then the usual KeyboardInterrupt
+        received.append(signum)
+        raise KeyboardInterrupt
+
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, interrupt)
     try:
         _app()
     except KeyboardInterrupt:  # Ctrl-C while a sweep launcher waits for its workers
+        received.append(received[0] if received else signal.SIGINT)
+    if received:  # also when a launcher swallowed the KeyboardInterrupt
         print("qlab-run: interrupted; runs keep their last checkpoints: run the same command again to resume",
               file=sys.stderr)
-        raise SystemExit(128 + signal.SIGINT) from None
+        raise SystemExit(128 + received[0])

@@ -301,7 +301,7 @@ def test_second_process_on_the_same_run_is_refused(tmp_path):
 SWEEP_STOPPER = textwrap.dedent(
     """
     # Loaded by every process of the sweep (PYTHONPATH): the first run to reach its 2nd checkpoint
-    # sends SIGINT to the whole process group, as Ctrl-C in a terminal does.
+    # sends SIGINT to the process group of its launcher (qlab-run), as Ctrl-C in a terminal does.
     import os, signal
     import qlab.experiment as experiment
 
@@ -311,7 +311,7 @@ SWEEP_STOPPER = textwrap.dedent(
         def hook(n):
             if n == 2 and not os.path.exists(os.environ["QLAB_TEST_FLAG"]):
                 open(os.environ["QLAB_TEST_FLAG"], "w").close()
-                os.killpg(os.getpgid(0), signal.SIGINT)
+                os.killpg(os.getpgid(os.getppid()), signal.SIGINT)  # the launcher's group, as a terminal does
         return original(cfg, run_dir, bar, hook)
 
     experiment.run_experiment = run_and_stop
