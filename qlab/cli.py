@@ -29,7 +29,8 @@ from omegaconf import DictConfig
 
 from qlab.config import CONFIG_DIR, override_problem, register_configs
 from qlab.runfolder import RunFolderError
-from qlab.runspec import require_name, run_name
+from qlab.runspec import run_name
+from qlab.validation import require_name
 
 register_configs()
 #: pid of the process that runs ``qlab-run`` (launcher workers are other processes)

@@ -25,6 +25,7 @@ from omegaconf import MISSING, DictConfig, OmegaConf
 from qlab.learners import LEARNERS, learner_config_class
 from qlab.shaping import SHAPING_VARIANTS
 from qlab.tasks import TASKS, LearnerSizes
+from qlab.validation import require_name
 
 #: default of ``max_learner_mib``; also the limit for runs recorded before the setting existed
 DEFAULT_MAX_LEARNER_MIB = 2048
@@ -263,8 +264,6 @@ def override_problem(argv: list[str]) -> str | None:
                 return f"{name}={named}: no such option; choose from {options}"
             choices[name] = [c for c in chosen if c != "null"]
         elif name == "series_name":  # checked before hydra makes its own folder under it
-            from qlab.runspec import require_name
-
             values = list(o.sweep_string_iterator()) if o.is_sweep_override() else [o.value()]
             try:
                 for value in values:

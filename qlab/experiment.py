@@ -30,7 +30,7 @@ from omegaconf import DictConfig, OmegaConf
 
 from qlab import runfolder
 from qlab.checkpoint import CheckpointError, has_checkpoint, load_checkpoint, save_checkpoint
-from qlab.config import flatten, validate
+from qlab.config import flatten, to_container, validate
 from qlab.copies import Copies
 from qlab.evaluation import evaluate
 from qlab.learners import Learner, Transitions
@@ -45,7 +45,8 @@ from qlab.recording import (
     file_digest,
     read_metrics,
 )
-from qlab.runspec import CHECKPOINT, build_run, config_tree, require_name, run_digest
+from qlab.runspec import CHECKPOINT, build_run, run_digest
+from qlab.validation import require_name
 
 
 @dataclass
@@ -200,8 +201,8 @@ class _Run:
 
     # --- folder ---------------------------------------------------------------------------
 
-    def _restore(self, saved: dict[str, Any], notes: list[str]) -> bool:
-        """Load a checkpoint; False (folder moved aside, a note added) if the metrics table does not match it."""
+    def _restore(self, saved: dict[str, Any], notes: list[str]) -> None:
+        """Load a checkpoint; if the metrics table does not match it, move the folder aside and add a note."""
         cfg, run_dir = self.cfg, self.run_dir
         threads = int(saved["loop"].get("torch_threads", cfg.torch_threads))
         if threads != int(cfg.torch_threads):
@@ -214,7 +215,7 @@ class _Run:
             moved = runfolder.set_aside(run_dir, "damaged")
             notes.append(f"{run_dir / METRICS} holds {len(recorded)} rows up to step {loop.step:,} but its checkpoint "
                          f"recorded {loop.metric_rows}; the damaged run was moved to {moved} and starts again")
-            return False
+            return
         self.loop = loop
         self.learner.load_state_dict(saved["learner"])
         self.learned.load_state_dict(saved["learned"])
@@ -224,12 +225,11 @@ class _Run:
         else:
             notes.append(f"resumed at step {loop.step:,}; this task's copies cannot be saved, so their unfinished "
                          "episodes start again")
-        return True
 
     def execute(self) -> dict:
         """Skip, resume or start the run; train to the budget; write the summary and the finish marker."""
         cfg, run_dir = self.cfg, self.run_dir
-        tree = config_tree(cfg)
+        tree = to_container(cfg)
         saved, note = _saved_state(run_dir)
         plan = runfolder.plan(run_dir, tree, self.budget, None if saved is None else int(saved["loop"]["step"]))
         notes = [n for n in (note, plan.note) if n]

@@ -69,11 +69,6 @@ def run_digest(tree: dict[str, Any], with_budget: bool = True) -> str:
     return hashlib.sha256(json.dumps(settings, sort_keys=True).encode()).hexdigest()[:16]
 
 
-def config_tree(cfg: DictConfig) -> dict[str, Any]:
-    """The resolved config as plain nested dicts."""
-    return to_container(cfg)
-
-
 def run_name(overrides: list[str]) -> str:
     """Folder name of a run: its sorted command-line overrides, minus storage and launch settings."""
     kept = []

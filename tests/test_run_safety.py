@@ -22,9 +22,9 @@ from runtools import QLAB_RUN, TINY, compose_run, measured, shell
 from qlab import runfolder
 from qlab.compare.markup import md_literal
 from qlab.compare.runs import load_study
-from qlab.config import override_problem
+from qlab.config import override_problem, to_container
 from qlab.recording import file_digest
-from qlab.runspec import STORAGE_KEYS, build_run, config_tree, run_digest, run_name
+from qlab.runspec import STORAGE_KEYS, build_run, run_digest, run_name
 
 SERIES = "safe"
 
@@ -67,14 +67,14 @@ def test_every_storage_key_is_tested():
 
 @pytest.mark.parametrize("override", list(STORAGE_OVERRIDES.values()))
 def test_storage_settings_change_neither_digest_nor_folder_name(override):
-    base, changed = config_tree(compose_run([])), config_tree(compose_run([override]))
+    base, changed = to_container(compose_run([])), to_container(compose_run([override]))
     assert run_digest(changed) == run_digest(base)
     assert run_name([override, "seed=3"]) == run_name(["seed=3"])
 
 
 @pytest.mark.parametrize("override", COMPUTING_OVERRIDES)
 def test_computing_settings_change_the_digest(override):
-    assert run_digest(config_tree(compose_run([override]))) != run_digest(config_tree(compose_run([])))
+    assert run_digest(to_container(compose_run([override]))) != run_digest(to_container(compose_run([])))
 
 
 @pytest.mark.parametrize("extra", ["tensorboard=false", "torch_threads=2", "checkpoint_every_episodes=5"])

@@ -20,9 +20,9 @@ from omegaconf import OmegaConf
 from omegaconf.errors import ConfigAttributeError, ValidationError
 from runtools import TINY, assert_tensorboard_matches_csv, compose_run, measured, shell, tensorboard_scalars
 
-from qlab.config import override_problem, validate
+from qlab.config import override_problem, to_container, validate
 from qlab.recording import read_metrics
-from qlab.runspec import build_run, config_tree, run_digest
+from qlab.runspec import build_run, run_digest
 
 # --- config errors -------------------------------------------------------------------------
 
@@ -101,9 +101,9 @@ def test_invalid_setting_from_the_shell_fails_plainly(tmp_path):
 
 def test_config_hash_ignores_storage_but_not_settings():
     base = compose_run([])
-    assert run_digest(config_tree(base)) == run_digest(config_tree(compose_run(["results_dir=elsewhere",
+    assert run_digest(to_container(base)) == run_digest(to_container(compose_run(["results_dir=elsewhere",
                                                                                 "series_name=other"])))
-    assert run_digest(config_tree(base)) != run_digest(config_tree(compose_run(["seed=1"])))
+    assert run_digest(to_container(base)) != run_digest(to_container(compose_run(["seed=1"])))
 
 
 # --- sweeps and recording ------------------------------------------------------------------
