@@ -12,6 +12,7 @@ from qlab.compare.stats import (
     bootstrap_ci,
     few_seeds_warning,
     iqm,
+    loss_from_best,
     performance_profile,
     performance_profile_ci,
     probability_of_improvement,
@@ -223,6 +224,34 @@ def test_steps_to_threshold_validates_shapes():
         steps_to_threshold(np.array([0, 2, 2]), np.zeros((2, 3)), 0.5, 10)
     with pytest.raises(ValueError, match="curves must hold at least one run"):
         steps_to_threshold(np.arange(3), np.zeros((0, 3)), 0.5, 10)
+
+
+# --- loss from the best score ------------------------------------------------------------------
+
+
+def test_loss_from_best_counts_up_from_zero_for_success_rates():
+    curves = np.array([
+        [0.0, 1.0, 0.6],  # best 1.0, final 0.4 below: (1.0 - 0.4) / (1.0 - 0) = 0.6
+        [0.0, 0.8, 0.8],  # best 0.8, final 0.4: (0.8 - 0.4) / 0.8 = 0.5
+        [0.0, 0.0, 0.0],  # never above the floor: 0
+        [np.nan, 0.5, 0.5],  # not yet evaluated at the first step: NaN skipped; final is the best, 0
+    ])
+    final = np.array([0.4, 0.4, 0.0, 1.0])
+    np.testing.assert_allclose(loss_from_best(curves, final, floor=0.0), [0.6, 0.5, 0.0, 0.0], rtol=1e-12)
+
+
+def test_loss_from_best_uses_each_runs_own_range_without_a_floor():
+    curves = np.array([[-5.0, -1.0], [-5.0, -2.0], [-2.0, -2.0]])
+    final = np.array([-4.0, -3.0, -2.0])
+    # (best - final) / (best - worst): (-1 + 4) / (-1 + 5) = 0.75; (-2 + 3) / (-2 + 5) = 1/3; flat run: 0
+    np.testing.assert_allclose(loss_from_best(curves, final), [0.75, 1.0 / 3.0, 0.0], rtol=1e-12)
+    # a final below every evaluation is the worst itself: the whole range lost, (2 - -1) / (2 - -1) = 1
+    assert loss_from_best(np.array([[0.0, 2.0]]), np.array([-1.0]))[0] == 1.0
+
+
+def test_loss_from_best_checks_the_final_shape():
+    with pytest.raises(ValueError, match=r"final must have shape \(2,\)"):
+        loss_from_best(np.zeros((2, 3)), np.zeros(3))
 
 
 # --- performance profiles -----------------------------------------------------------------------

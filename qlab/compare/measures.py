@@ -19,6 +19,8 @@ CONFIDENCE = 0.95
 POTENTIAL_ARM = "potential"
 #: tau grid of the performance profiles (final success rate is a fraction)
 PROFILE_TAUS = np.linspace(0.0, 1.0, 101)
+#: a run collapsed when it ends having lost more than this share of its best (see :func:`stats.loss_from_best`)
+COLLAPSE_LOSS = 0.5
 
 
 @dataclass
@@ -64,12 +66,19 @@ class ArmMeasures:
     reached: np.ndarray
     budget: int
     profile: Band
+    collapse_score: str  # the evaluation tag the collapse is measured on (see collapse_score)
+    loss: np.ndarray  # per run, the share of its best lost by the end (stats.loss_from_best)
     improvement_success: Estimate | None = None  # P(arm > none) on final success; None for none itself
     improvement_return: Estimate | None = None
 
     @property
     def n_runs(self) -> int:
         return len(self.seeds)
+
+    @property
+    def n_collapsed(self) -> int:
+        """Runs that ended having lost more than :data:`COLLAPSE_LOSS` of their best."""
+        return int((self.loss > COLLAPSE_LOSS).sum())
 
     @property
     def n_censored(self) -> int:
@@ -120,13 +129,28 @@ def _overestimation(runs: list[Run], steps: np.ndarray, seed: int) -> Band | Non
     return _band(steps[keep], gap[:, keep], seed)
 
 
-def arm_measures(runs: list[Run], steps: np.ndarray, threshold: float, seed: int = 0) -> ArmMeasures:
-    """Measures of one arm's reported runs on the evaluation ``steps`` grid."""
+def collapse_score(runs: list[Run]) -> str:
+    """The score a collapse is measured on: ``success`` when any of ``runs`` ever evaluated a success above 0,
+    else ``discounted_return`` (a task without a success signal, or a setting no run ever solved)."""
+    solved = any(np.any(r.evals["success"][1] > 0) for r in runs if "success" in r.evals)
+    return "success" if solved else "discounted_return"
+
+
+def _loss(curves: np.ndarray, final: np.ndarray, score: str) -> np.ndarray:
+    """Share of the best lost: success rates counted up from 0, returns over each run's own range."""
+    return stats.loss_from_best(curves, final, 0.0 if score == "success" else None)
+
+
+def arm_measures(
+    runs: list[Run], steps: np.ndarray, threshold: float, seed: int = 0, score: str = "success",
+) -> ArmMeasures:
+    """Measures of one arm's reported runs on the evaluation ``steps`` grid; collapses measured on ``score``."""
     success = eval_matrix(runs, "success", steps)
     ret = eval_matrix(runs, "discounted_return", steps)
     keep = np.all(np.isfinite(success), axis=0) & np.all(np.isfinite(ret), axis=0)
     final_success = np.array([r.final["success"] for r in runs])
     final_return = np.array([r.final["discounted_return"] for r in runs])
+    scored = (success, final_success) if score == "success" else (ret, final_return)
     budget = max(r.budget for r in runs)
     first, reached = stats.steps_to_threshold(steps[keep], success[:, keep], threshold, budget)
     p_low, p_high = stats.performance_profile_ci(final_success, PROFILE_TAUS, CONFIDENCE, seed=seed)
@@ -146,14 +170,18 @@ def arm_measures(runs: list[Run], steps: np.ndarray, threshold: float, seed: int
         reached=reached,
         budget=budget,
         profile=Band(PROFILE_TAUS, stats.performance_profile(final_success, PROFILE_TAUS), p_low, p_high),
+        collapse_score=score,
+        loss=_loss(*scored, score),
     )
 
 
-def learner_measures(selection: Selection, threshold: float, seed: int = 0) -> dict[str, ArmMeasures]:
-    """Measures of every arm of a learner; arms other than ``none`` get P(improvement over none)."""
+def learner_measures(
+    selection: Selection, threshold: float, seed: int = 0, score: str = "success",
+) -> dict[str, ArmMeasures]:
+    """Measures of every arm of a learner (collapses on ``score``); arms other than ``none`` get P(improvement)."""
     all_runs = [r for runs in selection.runs.values() for r in runs]
     steps = eval_steps(all_runs)
-    out = {arm: arm_measures(selection.runs[arm], steps, threshold, seed) for arm in selection.arms}
+    out = {arm: arm_measures(selection.runs[arm], steps, threshold, seed, score) for arm in selection.arms}
     base = out.get("none")
     if base is not None:
         for arm, m in out.items():

@@ -17,13 +17,17 @@ import argparse
 import sys
 from pathlib import Path
 
+import numpy as np
+
 from qlab.compare import exact, figures
 from qlab.compare.markup import markdown_to_html, md_literal
 from qlab.compare.measures import (
+    COLLAPSE_LOSS,
     POTENTIAL_ARM,
     ArmContrast,
     ArmMeasures,
     Estimate,
+    collapse_score,
     learner_measures,
     potential_against_start,
 )
@@ -201,6 +205,34 @@ def against_start_lines(contrasts: dict[str, ArmContrast]) -> list[str]:
     return [*lines, ""]
 
 
+#: what the collapse section says per score: why this score, and the rule on it
+COLLAPSE_TEXT = {
+    "success": (
+        "the evaluated success rate (runs of this task setting report successes)",
+        f"best is the highest success rate the run evaluated (during training or at the end); a run collapsed when "
+        f"final < {COLLAPSE_LOSS:g} x best, with best > 0; the share lost is (best - final) / best"),
+    "discounted_return": (
+        "the evaluated discounted return, because no run of this task setting ever evaluated a success above 0 "
+        "(a task without a success signal, or a setting never solved)",
+        "returns may be negative, so the loss is measured over the run's own range: best and worst are the highest "
+        "and lowest discounted return the run evaluated (during training or at the end), the share lost is "
+        f"(best - final) / (best - worst), and a run collapsed when it exceeds {COLLAPSE_LOSS:g} (with best > worst)"),
+}
+
+
+def collapse_lines(measures: dict[str, dict[str, ArmMeasures]]) -> list[str]:
+    """The section counting runs that ended having lost more than :data:`COLLAPSE_LOSS` of their best score."""
+    score = next(m.collapse_score for ms in measures.values() for m in ms.values())
+    why, rule = COLLAPSE_TEXT[score]
+    lines = ["## Collapse after the best evaluation", "",
+             f"How many runs ended having lost more than {COLLAPSE_LOSS:.0%} of the best score they reached, scored "
+             f"on {why}: {rule}. Failed runs count with their failure scores.", "",
+             "| learner | arm | runs | collapsed | share of the best lost, median over runs |", "|---|---|---|---|---|"]
+    lines += [f"{_row_start(lr, a)} {m.n_runs} | {m.n_collapsed} | {np.median(m.loss):.2f} |"
+              for lr, ms in measures.items() for a, m in ms.items()]
+    return [*lines, ""]
+
+
 def performance_lines(
     measures: dict[str, dict[str, ArmMeasures]], contrasts: dict[str, ArmContrast], threshold: float, out: Path,
 ) -> list[str]:
@@ -291,13 +323,15 @@ def write_report(
     """
     out.mkdir(parents=True, exist_ok=True)
     selections = {lr: select(study, lr, selection_seeds) for lr in study.learners()}
-    measures = {lr: learner_measures(sel, threshold) for lr, sel in selections.items()}
+    score = collapse_score(study.runs)
+    measures = {lr: learner_measures(sel, threshold, score=score) for lr, sel in selections.items()}
     lines = [f"# Comparison report: {md_literal(title)}", "", CAUTION, "", *(context or [])]
     contrasts = potential_against_start(measures)
     lines += summary_lines(study, measures, contrasts, threshold)
     lines += seed_warning(measures)
     lines += runs_lines(study, selections, selection_seeds)
     lines += performance_lines(measures, contrasts, threshold, out)
+    lines += collapse_lines(measures)
     if diagnostics:
         lines += exact.diagnostics_lines(study, selections, grid, out)
     else:

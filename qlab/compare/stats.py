@@ -1,6 +1,7 @@
 """Statistics for comparing runs across seeds, after Agarwal et al. (2021), "Deep RL at the edge of
 the statistical precipice" (NeurIPS): interquartile mean, percentile bootstrap intervals over runs,
-probability of improvement, steps to a success threshold and run-score performance profiles.
+probability of improvement, steps to a success threshold and run-score performance profiles; and,
+our own, the share of its best score a run lost by the end.
 
 Every bootstrap draws its resample indices from ``np.random.default_rng(seed)`` in one call, so a
 result depends only on the data, ``n_resamples`` and ``seed``.
@@ -148,6 +149,26 @@ def steps_to_threshold(
     reached = hit.any(axis=1)
     first = np.where(reached, s[hit.argmax(axis=1)], budget)
     return first, reached
+
+
+def loss_from_best(curves: np.ndarray, final: np.ndarray, floor: float | None = None) -> np.ndarray:
+    """Per run, the share of its rise from ``floor`` to its best score that it had lost by the end.
+
+    ``curves`` (n_runs, T) holds the scores evaluated during training (NaN: no evaluation), ``final``
+    (n_runs,) the final evaluation; best and worst are taken over both. ``floor`` is where a run's
+    rise starts: a number (0 for success rates, so a loss above 0.5 means final < 0.5 * best), or
+    None for each run's own worst score (for returns, which may be negative). Returns
+    ``(best - final) / (best - floor)``, 0 where ``best <= floor`` (nothing to lose).
+    """
+    c = _check_runs("curves", curves, 2)
+    f = np.asarray(final, dtype=np.float64)
+    if f.shape != (c.shape[0],):
+        raise ValueError(f"final must have shape ({c.shape[0]},) to match curves, got {f.shape}")
+    scores = np.concatenate([c, f[:, None]], axis=1)
+    best = np.fmax.reduce(scores, axis=1)  # fmax and fmin skip NaN
+    start = np.fmin.reduce(scores, axis=1) if floor is None else np.full(best.shape, float(floor))
+    rise = best - start
+    return np.where(rise > 0, (best - f) / np.where(rise > 0, rise, 1.0), 0.0)
 
 
 def performance_profile(scores: np.ndarray, taus: np.ndarray) -> np.ndarray:
