@@ -13,6 +13,7 @@ from qlab.compare.stats import (
     few_seeds_warning,
     iqm,
     loss_from_best,
+    median_is_censored,
     performance_profile,
     performance_profile_ci,
     probability_of_improvement,
@@ -199,22 +200,33 @@ def test_steps_to_threshold_hand_cases():
     curves = np.array([
         [0.0, 0.5, 0.9, 1.0],  # reaches 0.9 exactly at step 200
         [0.0, 0.95, 0.1, 0.0],  # reaches at 100, later drops: the first step counts
-        [0.1, 0.2, 0.3, 0.4],  # never: censored at the budget
+        [0.1, 0.2, 0.3, 0.4],  # never: censored, infinitely many steps
         [0.2, np.nan, np.nan, np.nan],  # crashed after the first evaluation: not reached
         [0.0, np.nan, 0.9, np.nan],  # a missing evaluation in between, reached at 200
         [0.9, 1.0, 1.0, 1.0],  # reached at the first evaluation
     ])
-    first, reached = steps_to_threshold(steps, curves, threshold=0.9, budget=400)
-    np.testing.assert_array_equal(first, [200, 100, 400, 400, 200, 0])
-    np.testing.assert_array_equal(reached, [True, True, False, False, True, True])
+    first = steps_to_threshold(steps, curves, threshold=0.9, budget=400)
+    np.testing.assert_array_equal(first, [200, 100, np.inf, np.inf, 200, 0])
 
 
 def test_steps_to_threshold_ignores_evaluations_after_the_budget():
     steps = np.array([0, 100, 200, 300])
     curves = np.array([[0.0, 0.0, 0.0, 1.0], [0.0, 1.0, 1.0, 1.0]])
-    first, reached = steps_to_threshold(steps, curves, threshold=0.5, budget=250)
-    np.testing.assert_array_equal(first, [250, 100])
-    np.testing.assert_array_equal(reached, [False, True])
+    np.testing.assert_array_equal(steps_to_threshold(steps, curves, threshold=0.5, budget=250), [np.inf, 100])
+
+
+@pytest.mark.parametrize(
+    ("values", "censored", "median"),
+    [
+        ([300.0, 100.0, np.inf, 200.0], False, 250.0),  # 1 of 4 never: sorted 100, 200, 300, inf; (200 + 300) / 2
+        ([300.0, np.inf, 100.0, np.inf], True, np.inf),  # 2 of 4: the middle pair is 300 and inf, midpoint inf
+        ([100.0, np.inf, 200.0, np.inf, 50.0], False, 200.0),  # 2 of 5: the third of 50, 100, 200, inf, inf
+        ([np.inf, 10.0, np.inf], True, np.inf),  # 2 of 3
+    ],
+)
+def test_a_median_with_half_or_more_runs_never_reaching_is_censored(values, censored, median):
+    assert median_is_censored(np.array(values)) is censored
+    assert np.median(values) == median  # numpy agrees: the median is infinite exactly when censored
 
 
 def test_steps_to_threshold_validates_shapes():

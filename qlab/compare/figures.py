@@ -109,21 +109,13 @@ def interval_figure(
     return fig
 
 
-def median_is_bound(m: ArmMeasures) -> bool:
-    """Whether ``m``'s median steps to threshold is only a lower bound: half or more of its runs never reached it.
-
-    The one rule behind the hollow markers here and the ``>=`` in the report's text.
-    """
-    return 2 * m.n_censored >= m.n_runs
-
-
 def settings_figure(
     settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], key: str, threshold: float,
 ) -> Figure:
     """Median steps to threshold against the task key's value (list midpoints), one panel per learner.
 
     ``measures[i]`` are the measures of ``settings[i]``. Filled markers: reached by more than half
-    the runs; hollow: a lower bound (half or more censored at the budget).
+    the runs; hollow, at the budget: a lower bound (half or more never reached the threshold).
     """
     learners = sorted({lr for ms in measures for lr in ms})
     fig, axes = _figure(len(learners), height=PANEL[1] + 0.3)
@@ -135,10 +127,10 @@ def settings_figure(
             points = [(x, ms[learner][arm]) for x, ms in zip(xs, measures, strict=True) if arm in ms.get(learner, {})]
             colour = arm_colour(arm)
             x = [p for p, _ in points]
-            y = [m.median_threshold_steps() for _, m in points]
+            y = [m.budget if m.median_censored else m.median_threshold_steps() for _, m in points]
             ax.plot(x, y, color=colour, linewidth=1.6, label=arm)
             ax.scatter(x, y, s=30, zorder=3, edgecolors=colour, linewidths=1.4,
-                       facecolors=["white" if median_is_bound(m) else colour for _, m in points])
+                       facecolors=["white" if m.median_censored else colour for _, m in points])
         ax.set_ylim(bottom=0)
         ax.set_xticks(xs, [f"{x:g}" for x in xs])
         ax.set_xlabel(f"{key} (midpoint of the range)" if ranged else key)

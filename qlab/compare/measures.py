@@ -62,8 +62,7 @@ class ArmMeasures:
     final_return: np.ndarray
     iqm_success: Estimate
     iqm_return: Estimate
-    threshold_steps: np.ndarray  # per run, censored at the budget
-    reached: np.ndarray
+    threshold_steps: np.ndarray  # per run, inf for a run that never reached the threshold (censored)
     budget: int
     profile: Band
     collapse_score: str  # the evaluation tag the collapse is measured on (see collapse_score)
@@ -81,11 +80,21 @@ class ArmMeasures:
         return int((self.loss > COLLAPSE_LOSS).sum())
 
     @property
+    def reached(self) -> np.ndarray:
+        """Per run, whether it reached the threshold within the budget."""
+        return np.isfinite(self.threshold_steps)
+
+    @property
     def n_censored(self) -> int:
-        return int((~self.reached).sum())
+        return int(np.isinf(self.threshold_steps).sum())
+
+    @property
+    def median_censored(self) -> bool:
+        """Whether half or more of the runs never reached the threshold: the median is then only "> budget"."""
+        return stats.median_is_censored(self.threshold_steps)
 
     def median_threshold_steps(self) -> float:
-        """Median steps to threshold, censored runs at the budget (a lower bound when half or more are censored)."""
+        """Median steps to threshold, censored runs counting as never: ``inf`` when :attr:`median_censored`."""
         return float(np.median(self.threshold_steps))
 
 
@@ -152,7 +161,6 @@ def arm_measures(
     final_return = np.array([r.final["discounted_return"] for r in runs])
     scored = (success, final_success) if score == "success" else (ret, final_return)
     budget = max(r.budget for r in runs)
-    first, reached = stats.steps_to_threshold(steps[keep], success[:, keep], threshold, budget)
     p_low, p_high = stats.performance_profile_ci(final_success, PROFILE_TAUS, CONFIDENCE, seed=seed)
     return ArmMeasures(
         arm=runs[0].arm,
@@ -166,8 +174,7 @@ def arm_measures(
         final_return=final_return,
         iqm_success=iqm_estimate(final_success, seed),
         iqm_return=iqm_estimate(final_return, seed),
-        threshold_steps=first,
-        reached=reached,
+        threshold_steps=stats.steps_to_threshold(steps[keep], success[:, keep], threshold, budget),
         budget=budget,
         profile=Band(PROFILE_TAUS, stats.performance_profile(final_success, PROFILE_TAUS), p_low, p_high),
         collapse_score=score,

@@ -27,14 +27,17 @@ from qlab.compare.stats import few_seeds_warning
 
 #: the figure of steps to threshold against the task setting
 SETTINGS_FIGURE = "steps_by_task_setting.png"
+#: how every page treats runs that never reach the success threshold
+CENSORING_RULE = ("A run that never reaches the threshold within its budget is censored and counts as never "
+                  "(infinitely many steps), so a median over runs of which half or more are censored is not reached "
+                  "within the budget: it is printed as a lower bound, `> budget`, with no interval.")
 CAUTION = ("> Caution: these results come from simulation only. A controller learned here is not fit for real "
            "plant as it is; validate it under local codes and licensed engineering practice.")
 
 
 def median_steps(m: ArmMeasures) -> str:
-    """Median steps to threshold; a lower bound (``>=``) when half the runs or more never reached it."""
-    text = f"{m.median_threshold_steps():,.0f}"
-    return f">= {text}" if figures.median_is_bound(m) else text
+    """Median steps to threshold; ``> budget`` when half the runs or more never reached it (no number to give)."""
+    return f"> {m.budget:,}" if m.median_censored else f"{m.median_threshold_steps():,.0f}"
 
 
 def failure_counts(runs: list[Run]) -> tuple[int, int]:
@@ -97,8 +100,7 @@ def overview_lines(
     lines += ["", "## Across task settings", "",
               f"Per learner and arm, in each task setting (columns by {shown}): the interquartile mean (IQM) of the "
               f"final success rate over the reported runs, and the median environment steps to a success rate >= "
-              f"{threshold:g}. Runs that never reach it count at the budget; `>=` marks a lower bound (half or more "
-              f"of the runs never reached it). Failure scores: {FAILURE_RULE}. Intervals and the rest are in each "
+              f"{threshold:g}. {CENSORING_RULE} Failure scores: {FAILURE_RULE}. Intervals and the rest are in each "
               "setting's report.", ""]
     lines += seed_warning({f"{i}/{lr}": ms for i, m in enumerate(measures) for lr, ms in m.items()})
     labels = [md_literal(s.short_label) for s in settings]

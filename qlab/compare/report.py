@@ -33,6 +33,7 @@ from qlab.compare.measures import (
 )
 from qlab.compare.overview import (
     CAUTION,
+    CENSORING_RULE,
     failure_counts,
     folder_notes,
     median_steps,
@@ -64,17 +65,17 @@ def _verdict(e: Estimate) -> str:
 
 def _speed_ratio(fast: ArmMeasures, base: ArmMeasures) -> str:
     """How many times fewer steps ``fast`` needs than ``base`` to reach the threshold (median runs)."""
-    fast_bound, base_bound = figures.median_is_bound(fast), figures.median_is_bound(base)
-    if fast_bound:
+    if fast.median_censored:
         return "reaches the threshold in at most half of its runs within the budget"
-    ratio = base.median_threshold_steps() / max(fast.median_threshold_steps(), 1.0)
-    base_arm = md_literal(base.arm, code=True)
-    if ratio == 1.0 and not base_bound:
+    fast_steps, base_arm = max(fast.median_threshold_steps(), 1.0), md_literal(base.arm, code=True)
+    if base.median_censored:
+        return (f"more than {base.budget / fast_steps:.1f} times fewer steps than {base_arm} (half or more "
+                f"{base_arm} runs never reached the threshold within its budget of {base.budget:,})")
+    ratio = base.median_threshold_steps() / fast_steps
+    if ratio == 1.0:
         return f"the same median steps as {base_arm}"
-    if ratio >= 1.0:
-        return f"{'at least ' if base_bound else ''}{ratio:.1f} times fewer steps than {base_arm} (median runs)"
-    if base_bound:
-        return f"speed against {base_arm} undetermined (half or more {base_arm} runs never reached the threshold)"
+    if ratio > 1.0:
+        return f"{ratio:.1f} times fewer steps than {base_arm} (median runs)"
     return f"{1.0 / ratio:.1f} times more steps than {base_arm} (median runs)"
 
 
@@ -127,7 +128,7 @@ def summary_lines(
         ties = f" (tied on median steps with {', '.join(code[a] for a in tied)})" if tied else ""
         head = (f"- **{name}**: {code[fast.arm]} learns fastest{ties}: median {median_steps(fast)} environment steps "
                 f"to a success rate >= {threshold:g} ({fast.n_censored} of {fast.n_runs} runs never reached it).")
-        if figures.median_is_bound(fast):
+        if fast.median_censored:
             head = (f"- **{name}**: no arm reaches a success rate >= {threshold:g} in more than half of its runs "
                     "within the budget.")
         lines.append(head)
@@ -278,9 +279,8 @@ def performance_lines(
     else:
         lines.append("No learner has both a `none` arm and a shaped arm: nothing to compare.")
     lines += ["", *against_start_lines(contrasts), f"## Steps to a success rate of {threshold:g}", "",
-              "First evaluation step at which a run's success rate reaches the threshold. Runs that never reach it "
-              "(censored) count at the budget, so a median with half or more runs censored is a lower bound.", "",
-              "| learner | arm | runs | reached | censored at budget | budget | median steps |",
+              f"First evaluation step at which a run's success rate reaches the threshold. {CENSORING_RULE}", "",
+              "| learner | arm | runs | reached | never reached (censored) | budget | median steps |",
               "|---|---|---|---|---|---|---|"]
     lines += [f"{_row_start(lr, a)} {m.n_runs} | {int(m.reached.sum())} | {m.n_censored} | {m.budget:,.0f} | "
               f"{median_steps(m)} |" for lr, a, m in rows]

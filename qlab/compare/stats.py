@@ -128,14 +128,13 @@ def probability_of_improvement_ci(
     return float(low), float(high)
 
 
-def steps_to_threshold(
-    steps: np.ndarray, curves: np.ndarray, threshold: float, budget: int
-) -> tuple[np.ndarray, np.ndarray]:
-    """First evaluation step at which each run's curve is ``>= threshold``, censored at ``budget``.
+def steps_to_threshold(steps: np.ndarray, curves: np.ndarray, threshold: float, budget: int) -> np.ndarray:
+    """First evaluation step at which each run's curve is ``>= threshold``; ``inf`` for a run that never does.
 
     ``steps`` (T,) strictly increasing evaluation steps; ``curves`` (n_runs, T) success rates there.
     NaN (a missing evaluation, e.g. after a crash) counts as not reached, as do evaluations after
-    ``budget``. Returns ``(first_step, reached)``; runs that never reach the threshold get ``budget``.
+    ``budget``. A run that never reaches the threshold is censored: it counts as never, infinitely
+    many steps, so a median over runs is censored exactly when :func:`median_is_censored` says so.
     """
     s = np.asarray(steps)
     c = _check_runs("curves", curves, 2)
@@ -146,9 +145,17 @@ def steps_to_threshold(
     if np.any(np.diff(s) <= 0):
         raise ValueError("steps must be strictly increasing")
     hit = (c >= threshold) & (s <= budget)
-    reached = hit.any(axis=1)
-    first = np.where(reached, s[hit.argmax(axis=1)], budget)
-    return first, reached
+    return np.where(hit.any(axis=1), s[hit.argmax(axis=1)].astype(np.float64), np.inf)
+
+
+def median_is_censored(values: np.ndarray) -> bool:
+    """Whether the median of ``values`` (``inf``: never reached) is censored: half or more of them are infinite.
+
+    Then ``np.median`` is infinite too (with an even count the midpoint of a finite and an infinite
+    value is infinite), and all a report can say is that the median lies beyond the budget.
+    """
+    v = _check_runs("values", values)
+    return bool(2 * np.count_nonzero(np.isinf(v)) >= v.size)
 
 
 def loss_from_best(curves: np.ndarray, final: np.ndarray, floor: float | None = None) -> np.ndarray:

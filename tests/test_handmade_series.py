@@ -1,4 +1,5 @@
-"""The report's collapse section on hand-made series: counts worked out by hand from the evaluations written."""
+"""Report sections on hand-made series (collapse, steps to threshold): numbers worked out by hand from the
+evaluations written."""
 
 from __future__ import annotations
 
@@ -73,3 +74,34 @@ def test_collapse_without_success_signal_uses_the_return_range(linear_quadratic)
     assert "(best - final) / (best - worst)" in text
     # one collapse (seed 0); median of lost shares [0.75, 0.333, 0] = 0.333
     assert table(text) == [["lstdq", "none", "3", "1", "0.33"]]
+
+
+#: first evaluation step at which each run reaches success 1.0 (None: never), on a grid of 250 steps, budget 1,000
+FIRST_REACH = {"none": [500, 750, None, None], "potential": [250, 500, 1000, None]}
+
+
+@pytest.fixture(scope="module")
+def reaching(tmp_path_factory) -> Path:
+    """Dock, tabular, arms none and potential, four seeds each, success 0 until the run's first reach, then 1."""
+    folder = tmp_path_factory.mktemp("reaching")
+    config = base_config(["learner=tabular", "budget_steps=1000"])
+    steps = [0, 250, 500, 750, 1000]
+    for arm, reach in FIRST_REACH.items():
+        for seed, first in enumerate(reach):
+            success = [float(first is not None and s >= first) for s in steps]
+            write_run(folder / f"{arm},seed={seed}", with_keys(config, **{"shaping.variant": arm, "seed": seed}),
+                      steps, success, [0.5 * v for v in success])
+    return folder
+
+
+def test_steps_to_threshold_counts_runs_that_never_reach_it_as_never(reaching):
+    assert main([str(reaching), "--no-diagnostics"]) == 0
+    markdown = (reaching / "report.md").read_text()
+    rows = {row[1]: row[2:] for row in table(section(markdown, "Steps to a success rate of 0.5"))}
+    # none: 500, 750, never, never: half censored, so the median is beyond the budget, printed "> 1,000"
+    assert rows["none"] == ["4", "2", "2", "1,000", "> 1,000"]
+    # potential: 250, 500, 1000, never: one censored; sorted middle pair 500 and 1000, median 750
+    assert rows["potential"] == ["4", "3", "1", "1,000", "750"]
+    # median(none) > 1,000 and median(potential) = 750: potential needs more than 1000 / 750 = 1.3 times fewer
+    assert ("`potential` against `none`: more than 1.3 times fewer steps than `none` (half or more `none` runs never "
+            "reached the threshold within its budget of 1,000)") in section(markdown, "Summary")
