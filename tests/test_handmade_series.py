@@ -104,4 +104,4 @@ def test_steps_to_threshold_counts_runs_that_never_reach_it_as_never(reaching):
     assert rows["potential"] == ["4", "3", "1", "1,000", "750"]
     # median(none) > 1,000 and median(potential) = 750: potential needs more than 1000 / 750 = 1.3 times fewer
     assert ("`potential` against `none`: more than 1.3 times fewer steps than `none` (half or more `none` runs never "
-            "reached the threshold within its budget of 1,000)") in section(markdown, "Summary")
+            "reached the threshold within the budget)") in section(markdown, "Summary")

@@ -9,11 +9,16 @@ from scipy import stats
 
 from qlab.compare import stats as stats_module
 from qlab.compare.stats import (
+    ESTIMATE,
+    LOWER_BOUND,
+    UNDETERMINED,
+    UPPER_BOUND,
     bootstrap_ci,
     few_seeds_warning,
     iqm,
     loss_from_best,
     median_is_censored,
+    median_ratio,
     performance_profile,
     performance_profile_ci,
     probability_of_improvement,
@@ -227,6 +232,83 @@ def test_steps_to_threshold_ignores_evaluations_after_the_budget():
 def test_a_median_with_half_or_more_runs_never_reaching_is_censored(values, censored, median):
     assert median_is_censored(np.array(values)) is censored
     assert np.median(values) == median  # numpy agrees: the median is infinite exactly when censored
+
+
+# --- ratio of medians ---------------------------------------------------------------------------
+
+#: steps to a threshold of two arms, no run censored; sorted, a's 8th of 15 is 7,800 and b's middle pair of 12 is
+#: 3,300 and 4,100, so median(a) / median(b) = 7800 / 3700
+STEPS_A = np.array([9600, 17000, 3300, 18600, 7800, 5400, 5400, 4700, 7200, 12100, 10700, 11000, 3400, 3600, 17400.0])
+STEPS_B = np.array([4900, 8900, 5500, 1800, 5700, 4100, 3300, 2000, 3000, 2800, 4700, 3200.0])
+
+
+def atom_span(distribution: np.ndarray, value: float) -> float:
+    """Distance between the distinct values of ``distribution`` on either side of ``value`` (the atom it sits on)."""
+    atoms = np.unique(distribution)
+    i = np.clip(np.searchsorted(atoms, value), 1, atoms.size - 2)
+    return float(atoms[i + 1] - atoms[i - 1])
+
+
+def test_median_ratio_matches_scipy_two_sample_bootstrap():
+    n_resamples = 20_000
+    res = stats.bootstrap(  # scipy.stats.bootstrap, percentile method, the two samples resampled independently
+        (STEPS_A, STEPS_B), lambda x, y, axis: np.median(x, axis=axis) / np.median(y, axis=axis),
+        n_resamples=n_resamples, method="percentile", paired=False, vectorized=True, rng=np.random.default_rng(22),
+    )
+    ratio = median_ratio(STEPS_A, STEPS_B, limit=20_000, n_resamples=n_resamples, seed=23)
+    assert ratio.kind == ESTIMATE
+    assert ratio.value == pytest.approx(7800 / 3700, rel=1e-12)
+    # A resampled median is an order statistic (or a midpoint of two), so the ratio lives on a lattice: two Monte
+    # Carlo percentiles may sit an atom apart either way, and ours rounds outwards to an atom. Tolerance: Monte Carlo
+    # error (mc_tolerance) plus the span of the two gaps around scipy's end.
+    dist = res.bootstrap_distribution
+    for ours, theirs in ((ratio.low, res.confidence_interval.low), (ratio.high, res.confidence_interval.high)):
+        assert abs(ours - theirs) <= mc_tolerance(dist, 0.95, n_resamples) + atom_span(dist, theirs)
+    assert ratio.low < ratio.value < ratio.high
+
+
+@pytest.mark.parametrize(
+    ("a", "b", "kind", "value"),
+    [
+        # a: 2 of 4 never reach, median censored, so median(a) > 4,000 = limit; median(b) = 1,000: ratio > 4
+        ([1000.0, 2000.0, np.inf, np.inf], [500.0, 1000.0, 1500.0], LOWER_BOUND, 4.0),
+        # b censored (2 of 3): median(b) > 4,000 while median(a) = 1,000: ratio < 1000 / 4000 = 0.25
+        ([500.0, 1000.0, 1500.0], [np.inf, 3000.0, np.inf], UPPER_BOUND, 0.25),
+        ([np.inf, np.inf], [np.inf, 1.0, np.inf], UNDETERMINED, np.nan),  # nothing known about either median
+    ],
+)
+def test_median_ratio_of_a_censored_median_is_a_bound_without_interval(a, b, kind, value):
+    ratio = median_ratio(np.array(a), np.array(b), limit=4000.0)
+    assert ratio.kind == kind
+    np.testing.assert_equal(ratio.value, value)
+    assert ratio.low is None and ratio.high is None
+
+
+def test_median_ratio_interval_widens_where_resampled_medians_are_censored():
+    a = np.array([1000.0, 2000.0, 3000.0, np.inf, np.inf])  # 2 of 5 never: median 3,000, not censored
+    b = np.array([1000.0, 1000.0, 2000.0, 2000.0, 3000.0])  # median 2,000
+    ratio = median_ratio(a, b, limit=4000.0, n_resamples=4000, seed=1)
+    assert (ratio.kind, ratio.value) == (ESTIMATE, 1.5)
+    # A resample of a is censored when it draws 3 or more of its 2 infinite values in 5 draws:
+    # P(Binomial(5, 0.4) >= 3) = 10 * 0.4^3 * 0.6^2 + 5 * 0.4^4 * 0.6 + 0.4^5 = 0.317 > 0.025, so the upper end is inf;
+    # b is never censored, so no resampled ratio is 0 and the lower end is a finite ratio.
+    assert ratio.high == np.inf
+    assert 0.0 < ratio.low < ratio.value
+    # Both censored: a resampled b is censored with the same 0.317, its ratio 0 (a finite) or unknown (a censored,
+    # counted 0 for the lower end): 0.317 > 0.025 of the resamples sit at 0, so the lower end is 0.
+    both = median_ratio(a, a[::-1], limit=4000.0, n_resamples=4000, seed=1)
+    assert (both.value, both.low, both.high) == (1.0, 0.0, np.inf)
+
+
+def test_median_ratio_is_reproducible_and_checks_its_input():
+    first, second = (median_ratio(STEPS_A, STEPS_B, limit=20_000, seed=5) for _ in range(2))
+    assert first == second
+    with pytest.raises(ValueError, match=r"^a must hold values > 0"):
+        median_ratio(np.array([1.0, np.nan]), STEPS_B, limit=1.0)
+    with pytest.raises(ValueError, match=r"^b must hold values > 0"):
+        median_ratio(STEPS_A, np.array([0.0, 1.0]), limit=1.0)
+    with pytest.raises(ValueError, match=r"^limit "):
+        median_ratio(STEPS_A, STEPS_B, limit=np.inf)
 
 
 def test_steps_to_threshold_validates_shapes():

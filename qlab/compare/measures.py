@@ -69,6 +69,7 @@ class ArmMeasures:
     loss: np.ndarray  # per run, the share of its best lost by the end (stats.loss_from_best)
     improvement_success: Estimate | None = None  # P(arm > none) on final success; None for none itself
     improvement_return: Estimate | None = None
+    speed_up: stats.MedianRatio | None = None  # median steps of none / of this arm; None for none itself
 
     @property
     def n_runs(self) -> int:
@@ -106,6 +107,7 @@ class ArmContrast:
     other: ArmMeasures
     improvement_success: Estimate  # P(a run of arm scores higher than a run of other), ties half
     improvement_return: Estimate
+    speed_up: stats.MedianRatio  # median steps of other / median steps of arm
 
     @property
     def iqm_success_difference(self) -> float:
@@ -127,6 +129,16 @@ def iqm_estimate(values: np.ndarray, seed: int = 0) -> Estimate:
 def _improvement(x: np.ndarray, y: np.ndarray, seed: int) -> Estimate:
     low, high = stats.probability_of_improvement_ci(x, y, CONFIDENCE, seed=seed)
     return Estimate(stats.probability_of_improvement(x, y), low, high)
+
+
+def speed_up(base: ArmMeasures, arm: ArmMeasures, seed: int = 0) -> stats.MedianRatio:
+    """Median steps to threshold of ``base`` over those of ``arm`` (above 1: ``arm`` is faster), with its interval.
+
+    A run that meets the threshold at step 0 counts as 1 step (a ratio needs positive steps); a censored
+    median is known to exceed the smaller of the two budgets (see :func:`stats.median_ratio`).
+    """
+    return stats.median_ratio(np.maximum(base.threshold_steps, 1.0), np.maximum(arm.threshold_steps, 1.0),
+                              min(base.budget, arm.budget), CONFIDENCE, seed=seed)
 
 
 def _overestimation(runs: list[Run], steps: np.ndarray, seed: int) -> Band | None:
@@ -195,13 +207,14 @@ def learner_measures(
             if arm != "none":
                 m.improvement_success = _improvement(m.final_success, base.final_success, seed)
                 m.improvement_return = _improvement(m.final_return, base.final_return, seed)
+                m.speed_up = speed_up(base, m, seed)
     return out
 
 
 def contrast(arm: ArmMeasures, other: ArmMeasures, seed: int = 0) -> ArmContrast:
     """``arm`` set against ``other`` on final success and final discounted return."""
     return ArmContrast(arm, other, _improvement(arm.final_success, other.final_success, seed),
-                       _improvement(arm.final_return, other.final_return, seed))
+                       _improvement(arm.final_return, other.final_return, seed), speed_up(other, arm, seed))
 
 
 def potential_against_start(measures: dict[str, dict[str, ArmMeasures]], seed: int = 0) -> dict[str, ArmContrast]:

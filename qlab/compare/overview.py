@@ -10,6 +10,8 @@ from __future__ import annotations
 
 from pathlib import Path
 
+import numpy as np
+
 from qlab.compare import figures
 from qlab.compare.markup import md_literal
 from qlab.compare.measures import ArmMeasures
@@ -23,7 +25,7 @@ from qlab.compare.runs import (
     arm_sort_key,
     position,
 )
-from qlab.compare.stats import few_seeds_warning
+from qlab.compare.stats import ESTIMATE, LOWER_BOUND, UNDETERMINED, MedianRatio, few_seeds_warning
 
 #: the figure of steps to threshold against the task setting
 SETTINGS_FIGURE = "steps_by_task_setting.png"
@@ -38,6 +40,19 @@ CAUTION = ("> Caution: these results come from simulation only. A controller lea
 def median_steps(m: ArmMeasures) -> str:
     """Median steps to threshold; ``> budget`` when half the runs or more never reached it (no number to give)."""
     return f"> {m.budget:,}" if m.median_censored else f"{m.median_threshold_steps():,.0f}"
+
+
+def _ratio_end(x: float) -> str:
+    return "inf" if np.isinf(x) else f"{x:.2f}"
+
+
+def speed_up_cell(r: MedianRatio) -> str:
+    """A speed-up as a table cell: ``2.11 [1.10, 3.57]``, a bound (``> 4.00``, ``< 0.25``) or ``undetermined``."""
+    if r.kind == ESTIMATE:
+        return f"{r.value:.2f} [{_ratio_end(r.low)}, {_ratio_end(r.high)}]"
+    if r.kind == UNDETERMINED:
+        return "undetermined"
+    return f"{'>' if r.kind == LOWER_BOUND else '<'} {r.value:.2f}"
 
 
 def failure_counts(runs: list[Run]) -> tuple[int, int]:

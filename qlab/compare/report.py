@@ -39,9 +39,11 @@ from qlab.compare.overview import (
     median_steps,
     overview_lines,
     seed_warning,
+    speed_up_cell,
 )
 from qlab.compare.runs import FAILURE_RULE, REPORT_MD, START_AT_POTENTIAL_ARM, Study, load_study, split_by_task
 from qlab.compare.selection import Selection, parse_seeds, select
+from qlab.compare.stats import LOWER_BOUND, UNDETERMINED, UPPER_BOUND, MedianRatio
 from qlab.recording import atomic_write_text
 from qlab.validation import require_int, require_within
 
@@ -63,20 +65,24 @@ def _verdict(e: Estimate) -> str:
     return "better than `none` (interval above 0.5)" if e.low > 0.5 else "worse than `none` (interval below 0.5)"
 
 
-def _speed_ratio(fast: ArmMeasures, base: ArmMeasures) -> str:
-    """How many times fewer steps ``fast`` needs than ``base`` to reach the threshold (median runs)."""
-    if fast.median_censored:
-        return "reaches the threshold in at most half of its runs within the budget"
-    fast_steps, base_arm = max(fast.median_threshold_steps(), 1.0), md_literal(base.arm, code=True)
-    if base.median_censored:
-        return (f"more than {base.budget / fast_steps:.1f} times fewer steps than {base_arm} (half or more "
-                f"{base_arm} runs never reached the threshold within its budget of {base.budget:,})")
-    ratio = base.median_threshold_steps() / fast_steps
-    if ratio == 1.0:
-        return f"the same median steps as {base_arm}"
-    if ratio > 1.0:
-        return f"{ratio:.1f} times fewer steps than {base_arm} (median runs)"
-    return f"{1.0 / ratio:.1f} times more steps than {base_arm} (median runs)"
+def _speed_ratio(r: MedianRatio, base: str) -> str:
+    """How many times fewer steps an arm needs than ``base`` to reach the threshold (median runs), and how sure."""
+    base_arm = md_literal(base, code=True)
+    if r.kind == UPPER_BOUND:
+        return (f"reaches the threshold in at most half of its runs within the budget (speed-up over {base_arm} "
+                f"below {r.value:.2f})")
+    if r.kind == UNDETERMINED:
+        return f"neither it nor {base_arm} reaches the threshold in more than half of the runs: speed undetermined"
+    if r.kind == LOWER_BOUND:
+        return (f"more than {r.value:.1f} times fewer steps than {base_arm} (half or more {base_arm} runs never "
+                "reached the threshold within the budget)")
+    if r.value == 1.0:
+        head = f"the same median steps as {base_arm}"
+    elif r.value > 1.0:
+        head = f"{r.value:.1f} times fewer steps than {base_arm}"
+    else:
+        head = f"{1.0 / r.value:.1f} times more steps than {base_arm}"
+    return f"{head} (median runs; speed-up {speed_up_cell(r)}, 95% interval)"
 
 
 def _better(e: Estimate, c: ArmContrast) -> str | None:
@@ -134,10 +140,10 @@ def summary_lines(
         lines.append(head)
         base = ms.get("none")
         for arm, m in ms.items():
-            if base is None or arm == "none" or m.improvement_success is None:
+            if base is None or arm == "none" or m.improvement_success is None or m.speed_up is None:
                 continue
             lines.append(
-                f"    - {code[arm]} against `none`: {_speed_ratio(m, base)}; IQM final success "
+                f"    - {code[arm]} against `none`: {_speed_ratio(m.speed_up, 'none')}; IQM final success "
                 f"{m.iqm_success.value:.2f} vs {base.iqm_success.value:.2f} "
                 f"({m.iqm_success.value - base.iqm_success.value:+.2f}); "
                 f"P({code[arm]} beats `none` on final success) = {_interval(m.improvement_success)}: "
@@ -145,8 +151,8 @@ def summary_lines(
         if learner in contrasts:
             c = contrasts[learner]
             lines.append(
-                f"    - {code[c.arm.arm]} against {code[c.other.arm]}: {_speed_ratio(c.arm, c.other)}; IQM final "
-                f"success {c.arm.iqm_success.value:.2f} vs {c.other.iqm_success.value:.2f} "
+                f"    - {code[c.arm.arm]} against {code[c.other.arm]}: {_speed_ratio(c.speed_up, c.other.arm)}; "
+                f"IQM final success {c.arm.iqm_success.value:.2f} vs {c.other.iqm_success.value:.2f} "
                 f"({c.iqm_success_difference:+.2f}); "
                 f"P({code[c.arm.arm]} beats {code[c.other.arm]}) on final success {_interval(c.improvement_success)}, "
                 f"on final discounted return {_interval(c.improvement_return)}: {_reading(c)}.")
@@ -200,7 +206,7 @@ def against_start_lines(contrasts: dict[str, ArmContrast]) -> list[str]:
              f"median steps, {shaped} / {start} | speed of {shaped} | IQM final success difference | reading |",
              "|---|---|---|---|---|---|---|"]
     lines += [f"| {md_literal(lr)} | {_interval(c.improvement_success)} | {_interval(c.improvement_return)} | "
-              f"{median_steps(c.arm)} / {median_steps(c.other)} | {_speed_ratio(c.arm, c.other)} | "
+              f"{median_steps(c.arm)} / {median_steps(c.other)} | {_speed_ratio(c.speed_up, c.other.arm)} | "
               f"{c.arm.iqm_success.value:.2f} - {c.other.iqm_success.value:.2f} = {c.iqm_success_difference:+.2f} | "
               f"{_reading(c)} |" for lr, c in contrasts.items()]
     return [*lines, ""]

@@ -1,10 +1,11 @@
 """Statistics for comparing runs across seeds, after Agarwal et al. (2021), "Deep RL at the edge of
 the statistical precipice" (NeurIPS): interquartile mean, percentile bootstrap intervals over runs,
-probability of improvement, steps to a success threshold and run-score performance profiles; and,
-our own, the share of its best score a run lost by the end.
+probability of improvement, steps to a success threshold and run-score performance profiles;
+and, our own, the share of its best score a run lost by the end and the ratio of two medians
+that may be censored (steps to a threshold that some runs never reach).
 
-Every bootstrap draws its resample indices from ``np.random.default_rng(seed)`` in one call, so a
-result depends only on the data, ``n_resamples`` and ``seed``.
+Every bootstrap draws its resample indices from ``np.random.default_rng(seed)`` in one call per
+group of runs, so a result depends only on the data, ``n_resamples`` and ``seed``.
 
 The bootstraps are written here, vectorised over resamples and curve points, rather than as calls
 of ``scipy.stats.bootstrap``: the same percentile method (tests/test_stats.py checks them against
@@ -16,11 +17,12 @@ where ``scipy.stats.trim_mean`` partitions, which is slower on the arrays a boot
 from __future__ import annotations
 
 from collections.abc import Callable
+from dataclasses import dataclass
 
 import numpy as np
 from scipy.stats import rankdata
 
-from qlab.validation import require_int, require_within
+from qlab.validation import require_int, require_positive, require_within
 
 # Largest resampled array (elements) built at once; bigger bootstraps are evaluated in chunks.
 _MAX_RESAMPLED_ELEMENTS = 1 << 23
@@ -176,6 +178,74 @@ def loss_from_best(curves: np.ndarray, final: np.ndarray, floor: float | None = 
     start = np.fmin.reduce(scores, axis=1) if floor is None else np.full(best.shape, float(floor))
     rise = best - start
     return np.where(rise > 0, (best - f) / np.where(rise > 0, rise, 1.0), 0.0)
+
+
+#: kinds of :class:`MedianRatio`
+ESTIMATE, LOWER_BOUND, UPPER_BOUND, UNDETERMINED = "estimate", "lower bound", "upper bound", "undetermined"
+
+
+@dataclass(frozen=True)
+class MedianRatio:
+    """median(a) / median(b): an estimate with its interval, or, where a median is censored, a bound without one."""
+
+    value: float  # the ratio; for a bound the bound itself; NaN when undetermined
+    low: float | None  # percentile bootstrap interval of an estimate; None for a bound
+    high: float | None
+    kind: str  # ESTIMATE, LOWER_BOUND (the ratio exceeds value), UPPER_BOUND (it is below value) or UNDETERMINED
+
+
+def _censorable(name: str, values: np.ndarray) -> np.ndarray:
+    """A 1-D sample of positive values, ``inf`` allowed (a censored run), no NaN."""
+    v = _check_runs(name, values)
+    if not np.all(v > 0):  # NaN fails too
+        raise ValueError(f"{name} must hold values > 0 (inf for a censored run, no NaN)")
+    return v
+
+
+def _ratio_bound(median_a: float, median_b: float, limit: float) -> MedianRatio:
+    """What a censored median leaves of the ratio: a censored value is known only to exceed ``limit``."""
+    if np.isinf(median_a) and np.isinf(median_b):
+        return MedianRatio(float("nan"), None, None, UNDETERMINED)
+    if np.isinf(median_a):
+        return MedianRatio(limit / median_b, None, None, LOWER_BOUND)
+    return MedianRatio(median_a / limit, None, None, UPPER_BOUND)
+
+
+def median_ratio(
+    a: np.ndarray, b: np.ndarray, limit: float, confidence: float = 0.95, n_resamples: int = 2000, seed: int = 0,
+) -> MedianRatio:
+    """median(a) / median(b) with a percentile bootstrap interval, the two groups resampled independently.
+
+    ``a`` and ``b`` hold positive values, ``inf`` for a censored run (e.g. steps to a threshold never
+    reached); ``limit`` is what every censored value is known to exceed (the budget). A censored
+    median (half or more of its group infinite, :func:`median_is_censored`) gives a bound and no
+    interval: ratio > ``limit / median(b)`` when median(a) is censored, ratio < ``median(a) / limit``
+    when median(b) is, undetermined when both are.
+
+    Otherwise ``n_resamples`` resamples of each group are drawn from ``np.random.default_rng(seed)``
+    (a's indices, then b's). A resampled median may be censored, making the resampled ratio 0 or
+    inf; where both are, the ratio is unknown and counts as 0 for the lower end and inf for the
+    upper end, which can only widen the interval. The ends are the resampled ratios at the percentile
+    points rounded outwards (numpy's ``lower`` and ``higher`` quantiles), so infinities need no
+    interpolation; an end may thus be 0 or inf.
+    """
+    x, y = _censorable("a", a), _censorable("b", b)
+    bound = require_positive("limit", limit)
+    require_within("confidence", confidence, 0.0, 1.0, open_low=True, open_high=True)
+    require_int("n_resamples", n_resamples, 1)
+    median_a, median_b = float(np.median(x)), float(np.median(y))
+    if np.isinf(median_a) or np.isinf(median_b):
+        return _ratio_bound(median_a, median_b, bound)
+    rng = np.random.default_rng(seed)
+    resampled_a = np.median(x[rng.integers(0, x.size, size=(int(n_resamples), x.size))], axis=1)
+    resampled_b = np.median(y[rng.integers(0, y.size, size=(int(n_resamples), y.size))], axis=1)
+    with np.errstate(invalid="ignore"):  # inf / inf: both resampled medians censored
+        ratios = resampled_a / resampled_b
+    unknown = np.isnan(ratios)
+    alpha = (1.0 - confidence) / 2.0
+    low = np.quantile(np.where(unknown, 0.0, ratios), alpha, method="lower")
+    high = np.quantile(np.where(unknown, np.inf, ratios), 1.0 - alpha, method="higher")
+    return MedianRatio(median_a / median_b, float(low), float(high), ESTIMATE)
 
 
 def performance_profile(scores: np.ndarray, taus: np.ndarray) -> np.ndarray:
