@@ -2,6 +2,8 @@
 
 from __future__ import annotations
 
+from copy import deepcopy
+
 import gymnasium as gym
 import numpy as np
 import pytest
@@ -13,8 +15,10 @@ from gymnasium import spaces
 import qlab  # noqa: F401  (registers the qlab tasks)
 from qlab.checkpoint import load_checkpoint, save_checkpoint
 from qlab.copies import make_copies
+from qlab.learners import build_learner
 from qlab.learners.protocol import Learner, Transitions
 from qlab.learners.qnet import QNetConfig, QNetLearner, bootstrap_values
+from qlab.learners.scaling import InputScaler
 from qlab.learners.schedules import ScheduleConfig
 from qlab.reference import lq_solution, value_iteration
 
@@ -291,6 +295,11 @@ def test_nonfinite_loss_is_flagged_and_the_update_skipped():
         ({"epsilon": ScheduleConfig("linear", 1.0, horizon=0.0)}, "epsilon: schedule horizon"),
         ({"grad_clip_norm": -1.0}, "grad_clip_norm"),
         ({"torch_threads": 0}, "torch_threads"),
+        ({"scale_inputs": "yes"}, "scale_inputs"),
+        ({"priority_exponent": -0.5}, "priority_exponent"),
+        ({"priority_offset": 0.0}, "priority_offset"),
+        ({"importance_exponent_start": 1.5}, "importance_exponent_start"),
+        ({"importance_anneal_steps": 0}, "importance_anneal_steps"),
     ],
 )
 def test_bad_settings_raise_naming_the_setting(changes, name):
@@ -365,3 +374,215 @@ def test_copies_keep_their_own_n_step_returns_end_to_end():
         assert sample.reward[k] == pytest.approx(ret, rel=1e-12, abs=1e-12)
         np.testing.assert_array_equal(sample.next_obs[k], bootstrap_obs)
         assert sample.discount[k] == pytest.approx(discount, rel=1e-12)
+
+
+# --- input scaling ------------------------------------------------------------------------------
+
+
+def test_scaler_maps_box_corners_to_minus_one_and_one():
+    low = np.array([-150.0, 0.0, 2.0, -np.inf, -1.0])
+    high = np.array([2.5, 1.0, 2.0, np.inf, np.inf])
+    scaler = InputScaler(low, high)
+    np.testing.assert_array_equal(scaler.bounded, [True, True, True, False, False])
+    corners = np.array([[-150.0, 0.0, 2.0, 3.0, 4.0], [2.5, 1.0, 2.0, 3.0, 4.0]])
+    # bounded: low -> -1, high -> 1 (a point interval -> 0); unbounded: unchanged before any statistics
+    np.testing.assert_array_equal(scaler.transform(corners), [[-1, -1, 0, 3, 4], [1, 1, 0, 3, 4]])
+    np.testing.assert_allclose(scaler.transform([[-73.75, 0.5, 2.0, 0.0, 0.0]])[0, :3], [0, 0, 0], atol=1e-6)
+
+
+def test_running_moments_match_numpy_on_a_stream_in_uneven_batches():
+    rng = np.random.default_rng(0)
+    stream = 1e3 + rng.normal(size=(96, 3)) * [1.0, 1e-2, 50.0]  # a large mean: the update must not cancel
+    scaler = InputScaler(np.full(3, -np.inf), np.full(3, np.inf))
+    for part in np.split(stream, [1, 8, 11, 61, 63]):  # batches of 1, 7, 3, 50, 2 and 33 rows
+        scaler.update(part)
+    assert scaler.count == 96
+    np.testing.assert_allclose(scaler.mean, np.mean(stream, axis=0), rtol=1e-12)  # numpy.mean
+    np.testing.assert_allclose(scaler.variance, np.var(stream, axis=0), rtol=1e-9)  # numpy.var (ddof=0)
+    z = scaler.transform(stream).astype(np.float64)
+    np.testing.assert_allclose(z.mean(axis=0), 0.0, atol=1e-5)
+    np.testing.assert_allclose(z.std(axis=0), 1.0, rtol=1e-4)  # the floor 1e-8 against var ~1e-4: 5e-5 relative
+
+
+def test_learner_scales_inputs_with_statistics_of_learned_observations_only():
+    box = spaces.Box(np.array([-2.0, -np.inf], np.float32), np.array([2.0, np.inf], np.float32))
+    cfg = QNetConfig(hidden_sizes=[8], batch_size=4, warmup_steps=100)
+    learner = QNetLearner(box, spaces.Discrete(3), cfg, seed=0)
+    rng = np.random.default_rng(1)
+    seen = []
+    for b in (4, 4, 4):  # one stream layout: every batch of the same size
+        obs = rng.normal(5.0, 3.0, (b, 2)).astype(np.float32)
+        seen.append(obs)
+        learner.act(rng.normal(size=(7, 2)))  # acting leaves the statistics alone
+        learner.learn(Transitions(obs, rng.integers(0, 3, b), np.zeros(b), obs, np.zeros(b, bool), np.zeros(b, bool)))
+    seen = np.concatenate(seen).astype(np.float64)
+    np.testing.assert_allclose(learner.scaler.mean, seen.mean(axis=0), rtol=1e-12)  # numpy.mean
+    np.testing.assert_allclose(learner.scaler.variance, seen.var(axis=0), rtol=1e-9)  # numpy.var
+    obs = np.array([[2.0, 5.0], [-2.0, seen[:, 1].mean()]], np.float32)
+    expected = [[1.0, (5.0 - seen[:, 1].mean()) / seen[:, 1].std()], [-1.0, 0.0]]
+    with torch.no_grad():
+        q = learner.online(torch.tensor(expected, dtype=torch.float32)).double().numpy()
+    np.testing.assert_allclose(learner.q_values(obs), q, rtol=1e-5, atol=1e-6)
+    off = QNetLearner(box, spaces.Discrete(3), QNetConfig(hidden_sizes=[8], scale_inputs=False), seed=0)
+    with torch.no_grad():
+        np.testing.assert_array_equal(off.q_values(obs), off.online(torch.from_numpy(obs)).double().numpy())
+
+
+@pytest.mark.parametrize("head", ["plain", "dueling"])
+def test_best_fit_scales_by_the_fitted_observations_not_the_learner(head):
+    box = spaces.Box(np.array([0.0, -np.inf], np.float32), np.array([4.0, np.inf], np.float32))
+    rng = np.random.default_rng(2)
+    obs = np.column_stack([rng.uniform(0, 4, 40), rng.normal(30.0, 7.0, 40)]).astype(np.float32)
+    targets = np.column_stack([obs[:, 0] - 0.01 * obs[:, 1], np.sin(obs[:, 0])])
+    cfg = QNetConfig(hidden_sizes=[8], batch_size=4, warmup_steps=0, update_every=4, head=head)
+    trained = QNetLearner(box, spaces.Discrete(2), cfg, seed=5)
+    for _ in range(3):  # other weights and other running statistics
+        trained.learn(Transitions(obs[:4] * 3, np.zeros(4, np.int64), np.ones(4), obs[:4], np.zeros(4, bool),
+                                  np.zeros(4, bool)))
+    fit = trained.fit_function_class(obs, targets, steps=50)
+    np.testing.assert_array_equal(fit, QNetLearner(box, spaces.Discrete(2), cfg, seed=0).fit_function_class(
+        obs, targets, steps=50))
+    # the same head fitted without scaling on observations standardised by hand gives the same numbers:
+    # [0, 4] -> [-1, 1]; the unbounded column by its own mean and variance (numpy.mean, numpy.var)
+    by_hand = np.column_stack([obs[:, 0] / 2.0 - 1.0, (obs[:, 1] - np.mean(obs[:, 1], dtype=np.float64))
+                               / np.sqrt(np.var(obs[:, 1], dtype=np.float64) + 1e-8)]).astype(np.float32)
+    plain = QNetLearner(box, spaces.Discrete(2), QNetConfig(hidden_sizes=[8], head=head, scale_inputs=False), seed=0)
+    np.testing.assert_allclose(fit, plain.fit_function_class(by_hand, targets, steps=50), rtol=1e-4, atol=1e-5)
+
+
+# --- dueling head -------------------------------------------------------------------------------
+
+
+def test_dueling_head_combines_the_streams_as_eq_9():
+    cfg = QNetConfig(hidden_sizes=[2], head="dueling", scale_inputs=False)
+    learner = QNetLearner(spaces.Box(-np.inf, np.inf, (2,)), spaces.Discrete(3), cfg, seed=0)
+    net = learner.online
+    with torch.no_grad():
+        net.shared[0].weight.copy_(torch.tensor([[1.0, 0.0], [0.0, -1.0]]))
+        net.shared[0].bias.copy_(torch.tensor([0.0, 0.5]))
+        net.value.weight.copy_(torch.tensor([[1.0, 1.0]]))
+        net.value.bias.copy_(torch.tensor([0.5]))
+        net.advantage.weight.copy_(torch.tensor([[1.0, 0.0], [0.0, 1.0], [2.0, 1.0]]))
+        net.advantage.bias.copy_(torch.tensor([0.0, 0.0, -1.0]))
+    # Wang et al. (2016), eq. 9: Q(s, a) = V(s) + A(s, a) - mean_a' A(s, a'), worked by hand.
+    # s = (1, -2): hidden relu(1, 2.5) = (1, 2.5); V = 1 + 2.5 + 0.5 = 4; A = (1, 2.5, 3.5), mean 7/3;
+    # Q = 4 + A - 7/3 = (8/3, 25/6, 31/6).
+    # s = (-1, 1): hidden relu(-1, -0.5) = (0, 0); V = 0.5; A = (0, 0, -1), mean -1/3; Q = (5/6, 5/6, -1/6).
+    q = learner.q_values(np.array([[1.0, -2.0], [-1.0, 1.0]]))
+    np.testing.assert_allclose(q, [[8 / 3, 25 / 6, 31 / 6], [5 / 6, 5 / 6, -1 / 6]], rtol=1e-6)
+    np.testing.assert_allclose(q.mean(axis=1), [4.0, 0.5], rtol=1e-6)  # mean over actions is V (eq. 9)
+
+
+def test_dueling_weights_come_from_the_learner_seed():
+    cfg = QNetConfig(hidden_sizes=[8, 8], head="dueling")
+    box, actions = spaces.Box(-1.0, 1.0, (3,)), spaces.Discrete(4)
+    a, b, c = (QNetLearner(box, actions, cfg, seed=s) for s in (3, 3, 4))
+    _assert_same_tree(a.online.state_dict(), b.online.state_dict())
+    assert not torch.equal(a.online.value.weight, c.online.value.weight)
+    names = {name for name, _ in a.online.named_parameters()}
+    assert {"value.weight", "advantage.bias", "shared.2.weight"} <= names
+
+
+# --- prioritized replay in the learner ----------------------------------------------------------
+
+
+def test_prioritized_update_weights_the_loss_and_sets_the_priorities():
+    cfg = QNetConfig(hidden_sizes=[8], batch_size=6, warmup_steps=16, update_every=8, loss="squared",
+                     replay_kind="prioritized", priority_exponent=0.7, priority_offset=0.01,
+                     importance_exponent_start=0.2, importance_anneal_steps=40)
+    learner, batch = _filled_learner(cfg)
+    learner.learn(batch)  # 8 steps: warm-up, no update
+    learner.learn(batch)  # step 16: a first update reprioritises some slots
+    twin = deepcopy(learner)
+    metrics = learner.learn(batch)  # step 24: the update checked
+    # the same update by hand on the twin: store, draw the minibatch, squared TD loss weighted by
+    # w_i = (N P(i))^-beta / max_j w_j (Schaul et al. 2016, sec. 3.4) with beta = 0.2 + 0.8 * 24 / 40
+    twin.scaler.update(batch.obs)
+    twin.replay.add(batch)
+    priority = twin.replay.tree.leaves(np.arange(24))
+    sample = twin.replay.sample(6, twin.rng)
+    beta = 0.2 + 0.8 * 24 / 40
+    p = priority[sample.index]
+    w = (24 * p / priority.sum()) ** -beta
+    w /= w.max()
+    np.testing.assert_allclose(twin.replay.weights(sample.index, beta), w, rtol=1e-12)
+    assert w.min() < 0.99  # the priorities differ, so does the correction
+    with torch.no_grad():
+        next_inputs = twin._inputs(sample.next_obs)
+        boot = bootstrap_values(twin.online(next_inputs), twin.target(next_inputs), True).double().numpy()
+        q = twin.online(twin._inputs(sample.obs)).double().numpy()[np.arange(6), sample.action]
+    delta = sample.reward + sample.discount * boot - q
+    assert metrics["td_loss"] == pytest.approx(np.mean(w * 0.5 * delta**2), rel=1e-5)
+    # then the drawn slots get (|delta| + epsilon)^alpha (Schaul et al. 2016, sec. 3.3), the others keep theirs
+    priority[sample.index] = (np.abs(delta) + 0.01) ** 0.7
+    np.testing.assert_allclose(learner.replay.tree.leaves(np.arange(24)), priority, rtol=1e-5)
+
+
+def test_importance_exponent_anneals_linearly_to_one():
+    learner = QNetLearner(spaces.Box(-1.0, 1.0, (2,)), spaces.Discrete(2),
+                          QNetConfig(importance_exponent_start=0.4, importance_anneal_steps=100), seed=0)
+    # linear anneal beta_0 -> 1 (Schaul et al. 2016, sec. 3.4): 0.4 + 0.6 t / 100, then 1
+    np.testing.assert_allclose(learner.importance_exponent(np.array([0, 50, 100, 250])), [0.4, 0.7, 1.0, 1.0])
+
+
+@pytest.mark.parametrize("kind", ["uniform", "prioritized"])
+def test_memory_estimate_is_the_replay_allocation(kind):
+    cfg = QNetConfig(replay_capacity=300, batch_size=4, replay_kind=kind)
+    box, actions = spaces.Box(-1.0, 1.0, (5,)), spaces.Discrete(3)
+    n_bytes, name = QNetLearner.memory_bytes(cfg, box, actions)
+    assert name == "replay_capacity" and n_bytes == QNetLearner(box, actions, cfg, seed=0).replay.nbytes
+
+
+def _random_batches(n: int, copies: int, seed: int) -> list[Transitions]:
+    rng = np.random.default_rng(seed)
+    out = []
+    for _ in range(n):
+        obs = rng.normal([0.5, -20.0], [1.0, 4.0], (copies, 2)).astype(np.float32)
+        ended, coin = rng.random(copies) < 0.1, rng.random(copies) < 0.5
+        next_obs = obs + rng.normal(0, 0.1, obs.shape).astype(np.float32)
+        out.append(Transitions(obs, rng.integers(0, 3, copies), rng.normal(size=copies), next_obs, ended & coin,
+                               ended & ~coin))
+    return out
+
+
+def test_prioritized_dueling_scaled_learner_resumes_exactly(tmp_path):
+    box = spaces.Box(np.array([-1.0, -np.inf], np.float32), np.array([1.0, np.inf], np.float32))
+    cfg = QNetConfig(hidden_sizes=[16, 16], batch_size=8, replay_capacity=120, warmup_steps=16, update_every=2,
+                     target_update_every=5, n_step=3, head="dueling", replay_kind="prioritized",
+                     importance_anneal_steps=200, epsilon=ScheduleConfig("linear", 1.0, 0.1, 100.0))
+    assert cfg.scale_inputs
+    batches = _random_batches(40, 4, seed=9)
+    full = QNetLearner(box, spaces.Discrete(3), cfg, seed=1)
+    for batch in batches[:25]:  # 100 steps: the replay (120 slots, 30 rows of 4) has not wrapped yet
+        full.act(batch.obs)
+        full.learn(batch)
+    save_checkpoint(tmp_path / "ckpt", {"learner": full.state_dict()})
+    resumed = QNetLearner(box, spaces.Discrete(3), cfg, seed=12345)
+    resumed.load_state_dict(load_checkpoint(tmp_path / "ckpt")["learner"])
+    for batch in batches[25:]:  # 60 more steps: wraps, reprioritises, anneals beta
+        np.testing.assert_array_equal(resumed.act(batch.obs), full.act(batch.obs))
+        assert resumed.learn(batch) == full.learn(batch)
+    assert full.updates > 20 and full.replay.filled_rows == full.replay.rows
+    _assert_same_tree(full.state_dict(), resumed.state_dict())
+
+
+def test_states_that_miss_scaler_or_priorities_are_refused():
+    box, actions = spaces.Box(-1.0, 1.0, (2,)), spaces.Discrete(2)
+    unscaled = QNetLearner(box, actions, QNetConfig(scale_inputs=False), seed=0)
+    with pytest.raises(ValueError, match=r"has no input-scaler statistics \('scaler'\).*scale_inputs=True"):
+        QNetLearner(box, actions, QNetConfig(), seed=0).load_state_dict(unscaled.state_dict())
+    uniform = QNetLearner(box, actions, QNetConfig(), seed=0)
+    with pytest.raises(ValueError, match=r"no \['priority', 'max_priority'\] entries"):
+        QNetLearner(box, actions, QNetConfig(replay_kind="prioritized"), seed=0).load_state_dict(uniform.state_dict())
+
+
+@pytest.mark.parametrize(
+    ("key", "value", "choices"),
+    [("replay_kind", "ranked", r"\['uniform', 'prioritized'\]"), ("head", "duel", r"\['plain', 'dueling'\]")],
+)
+def test_bad_replay_kind_or_head_names_the_key_and_the_choices(key, value, choices):
+    with pytest.raises(ValueError, match=rf"{key} must be one of {choices}, got '{value}'"):
+        QNetConfig(**{key: value})
+    box, actions = spaces.Box(-1.0, 1.0, (2,)), spaces.Discrete(2)
+    with pytest.raises(ValueError, match=rf"{key} must be one of {choices}"):  # through the hydra schema as well
+        build_learner("qnet", {key: value}, box, actions, seed=0)

@@ -1,14 +1,26 @@
 """Q-network learner (DQN family) for small CPU problems.
 
-An MLP maps an observation to one Q-value per discrete action. Transitions go to a
-:class:`~qlab.learners.replay.ReplayBuffer`; after ``warmup_steps`` environment steps a gradient
-step is taken every ``update_every`` steps (once the replay holds a minibatch) on a uniformly
+An MLP maps an observation to one Q-value per discrete action, through a plain linear output
+layer or a dueling head (:mod:`qlab.learners.networks`). Transitions go to a replay memory,
+uniform (:class:`~qlab.learners.replay.ReplayBuffer`) or prioritized
+(:class:`~qlab.learners.prioritized.PrioritizedReplay`); after ``warmup_steps`` environment steps
+a gradient step is taken every ``update_every`` steps (once the replay holds a minibatch) on a
 sampled minibatch, regressing Q(s, a) on the n-step target ``R + d * b(s')`` where ``R`` is the
 n-step discounted reward sum, ``d`` the bootstrap discount (0 after a termination) and ``b``
 the bootstrap value from a target network (:func:`bootstrap_values`: max, or the Double DQN
 estimate of van Hasselt et al. 2016).
-The objective is the mean TD loss (squared or Huber) plus an optional L2/L1 weight penalty.
-The target network follows the online one by a periodic copy or by Polyak averaging.
+The objective is the mean TD loss (squared or Huber) plus an optional L2/L1 weight penalty; with
+prioritized replay each sample's TD loss is multiplied by its importance-sampling weight, and
+after the step the sampled slots' priorities are set from the TD errors of that update (Schaul
+et al. 2016, Algorithm 1). The target network follows the online one by a periodic copy or by
+Polyak averaging.
+
+Input scaling (``scale_inputs``): the replay stores raw observations; they are scaled
+(:class:`~qlab.learners.scaling.InputScaler`) whenever they enter a network, in ``act``,
+``greedy``, ``value``, ``q_values`` and on both sides of an update. Bounded observation
+dimensions map affinely onto [-1, 1]; unbounded ones are standardised with running moments that
+are updated from the ``obs`` of each ``learn`` batch, before that batch's updates, and nowhere
+else (acting never changes them). The moments are part of the state, so resuming is exact.
 
 Batches: ``act`` takes ``(B, obs_dim)`` observations, e.g. of ``B`` task copies; ``learn`` takes a
 batch of ``B`` transitions, one per copy, and counts ``B`` environment steps, so the number of
@@ -17,15 +29,15 @@ a batch are taken after it is stored). The replay keeps one stream per copy, so 
 never mix copies; every ``learn`` call must then carry the same ``B``.
 
 Randomness: network initialisation uses a ``torch.Generator`` owned by the learner (the global
-torch RNG is never read or touched); exploration and replay sampling use the learner's numpy
-``Generator``. Both states are part of :meth:`QNetLearner.state_dict`, so with the same seed and
-the same ``torch_threads`` a run and its resumed copy produce identical results on CPU.
+torch RNG is never read or touched); exploration and replay sampling (uniform or prioritized) use
+the learner's numpy ``Generator``. Both states are part of :meth:`QNetLearner.state_dict`, with the
+replay's priorities and the scaler's moments, so with the same seed and the same
+``torch_threads`` a run and its resumed copy produce identical results on CPU.
 """
 
 from __future__ import annotations
 
 import copy
-import itertools
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -34,9 +46,13 @@ import torch
 from gymnasium import spaces
 from torch import nn
 
+from qlab.learners.networks import HEADS, build_qnet
+from qlab.learners.prioritized import PrioritizedReplay
 from qlab.learners.protocol import Transitions
 from qlab.learners.replay import ReplayBuffer
-from qlab.learners.schedules import ScheduleConfig, check_epsilon
+from qlab.learners.scaling import InputScaler
+from qlab.learners.schedules import Schedule, ScheduleConfig, check_epsilon
+from qlab.learners.sumtree import SumTree
 from qlab.validation import (
     require_choice,
     require_gamma,
@@ -49,6 +65,7 @@ from qlab.validation import (
 
 LOSSES = ("squared", "huber")
 WEIGHT_PENALTIES = ("none", "l2", "l1")
+REPLAY_KINDS = ("uniform", "prioritized")
 
 #: Best fit of the architecture (:meth:`QNetLearner.fit_function_class`): full-batch Adam steps by
 #: default, step size, and the seed of the initial weights.
@@ -61,8 +78,9 @@ FIT_SEED = 0
 class QNetConfig:
     """Settings of :class:`QNetLearner` (plain fields, usable as a hydra structured config).
 
-    Counts: ``warmup_steps``, ``update_every`` and ``epsilon_horizon`` are in environment steps
-    (transitions received); ``target_update_every`` is in gradient updates.
+    Counts: ``warmup_steps``, ``update_every``, ``epsilon_horizon`` and ``importance_anneal_steps``
+    are in environment steps (transitions received); ``target_update_every`` is in gradient updates.
+    The ``priority_*`` and ``importance_*`` settings act only with ``replay_kind="prioritized"``.
     """
 
     hidden_sizes: list[int] = field(default_factory=lambda: [64, 64])  # ReLU MLP widths
@@ -83,6 +101,13 @@ class QNetConfig:
     epsilon: ScheduleConfig = field(default_factory=lambda: ScheduleConfig("linear", 1.0, 0.05, 10_000.0))  # env steps
     grad_clip_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
+    scale_inputs: bool = True  # bounded observation dimensions onto [-1, 1], the others standardised (running)
+    head: str = "plain"  # "plain" (one linear output per action) or "dueling" (Wang et al. 2016)
+    replay_kind: str = "uniform"  # "uniform" or "prioritized" (proportional, Schaul et al. 2016)
+    priority_exponent: float = 0.6  # alpha: p_i = (|TD error| + priority_offset) ** alpha; 0 gives uniform
+    priority_offset: float = 1e-6  # epsilon, keeps every slot drawable
+    importance_exponent_start: float = 0.4  # beta at step 0, annealed linearly to 1
+    importance_anneal_steps: int = 50_000  # env steps over which beta reaches 1
 
     def __post_init__(self) -> None:
         require_int_list("hidden_sizes", self.hidden_sizes, 1)
@@ -106,7 +131,14 @@ class QNetConfig:
         check_epsilon("epsilon", self.epsilon)
         require_non_negative("grad_clip_norm", self.grad_clip_norm, note="(0 disables)")
         require_int("torch_threads", self.torch_threads, 1)
-
+        if not isinstance(self.scale_inputs, bool):
+            raise ValueError(f"scale_inputs must be true or false, got {self.scale_inputs!r}")
+        require_choice("head", self.head, HEADS)
+        require_choice("replay_kind", self.replay_kind, REPLAY_KINDS)
+        require_non_negative("priority_exponent", self.priority_exponent)
+        require_positive("priority_offset", self.priority_offset)
+        require_within("importance_exponent_start", self.importance_exponent_start, 0.0, 1.0)
+        require_int("importance_anneal_steps", self.importance_anneal_steps, 1)
 
 
 def bootstrap_values(q_online_next: torch.Tensor, q_target_next: torch.Tensor, double: bool) -> torch.Tensor:
@@ -123,18 +155,12 @@ def bootstrap_values(q_online_next: torch.Tensor, q_target_next: torch.Tensor, d
     return q_target_next.gather(1, choice).squeeze(1)
 
 
-def build_mlp(obs_dim: int, hidden_sizes: list[int], n_actions: int, generator: torch.Generator) -> nn.Sequential:
-    """ReLU MLP; weights and biases ~ U(-1/sqrt(fan_in), 1/sqrt(fan_in)) drawn from ``generator``."""
-    widths = [obs_dim, *(int(h) for h in hidden_sizes), n_actions]
-    layers: list[nn.Module] = []
-    for fan_in, fan_out in itertools.pairwise(widths):
-        linear = nn.utils.skip_init(nn.Linear, fan_in, fan_out)
-        bound = 1.0 / np.sqrt(fan_in)
-        with torch.no_grad():
-            nn.init.uniform_(linear.weight, -bound, bound, generator=generator)
-            nn.init.uniform_(linear.bias, -bound, bound, generator=generator)
-        layers += [linear, nn.ReLU()]
-    return nn.Sequential(*layers[:-1])
+def make_replay(config: QNetConfig, obs_dim: int) -> ReplayBuffer:
+    """The replay memory ``config.replay_kind`` names, float32 observations."""
+    if config.replay_kind == "prioritized":
+        return PrioritizedReplay(config.replay_capacity, obs_dim, config.gamma, config.n_step,
+                                 config.priority_exponent, config.priority_offset, obs_dtype=np.float32)
+    return ReplayBuffer(config.replay_capacity, obs_dim, config.gamma, config.n_step, obs_dtype=np.float32)
 
 
 class QNetLearner:
@@ -158,40 +184,54 @@ class QNetLearner:
         self.epsilon = check_epsilon("epsilon", config.epsilon)
         self.rng = np.random.default_rng(seed)
         self.torch_generator = torch.Generator().manual_seed(int(seed))
-        self.online = build_mlp(self.obs_dim, config.hidden_sizes, self.n_actions, self.torch_generator)
+        self._low, self._high = observation_space.low, observation_space.high
+        self.scaler = InputScaler(self._low, self._high) if config.scale_inputs else None
+        self.online = build_qnet(self.obs_dim, config.hidden_sizes, self.n_actions, config.head, self.torch_generator)
         self.target = copy.deepcopy(self.online).requires_grad_(False)
         self.optimizer = torch.optim.Adam(self.online.parameters(), lr=config.learning_rate)
-        self._weights = [m.weight for m in self.online if isinstance(m, nn.Linear)]
-        self.replay = ReplayBuffer(
-            config.replay_capacity, self.obs_dim, config.gamma, config.n_step, obs_dtype=np.float32
-        )
+        self._weights = [m.weight for m in self.online.modules() if isinstance(m, nn.Linear)]
+        self.replay = make_replay(config, self.obs_dim)
+        self.importance_exponent = Schedule("linear", config.importance_exponent_start, 1.0,
+                                            float(config.importance_anneal_steps))
         self.env_steps = 0
         self.updates = 0
 
     @classmethod
     def memory_bytes(cls, config: QNetConfig, observation_space: spaces.Space,
                      action_space: spaces.Space) -> tuple[int, str]:
-        """Bytes of the replay memory (two float32 observations, action, reward and flags per slot)."""
+        """Bytes of the replay memory (two float32 observations, action, reward and flags per slot; the sum
+        tree of prioritized replay)."""
         obs_dim = int(np.prod(observation_space.shape or (1,)))
-        return int(config.replay_capacity) * (8 * obs_dim + 18), "replay_capacity"
+        n_bytes = int(config.replay_capacity) * (8 * obs_dim + 18)
+        if config.replay_kind == "prioritized":
+            n_bytes += SumTree.bytes_for(config.replay_capacity)
+        return n_bytes, "replay_capacity"
 
     # --- optional capabilities (qlab.learners.protocol) -------------------------------------
 
     def fit_function_class(self, observations: np.ndarray, targets: np.ndarray, steps: int | None = None) -> np.ndarray:
         """The same architecture trained on ``targets`` ``(N, n_actions)`` at ``observations`` by full-batch Adam.
 
-        Mean squared error, ``steps`` steps (None: ``FIT_STEPS``) of step size ``FIT_LEARNING_RATE``
-        from initial weights seeded by ``FIT_SEED``, on one torch thread (the thread count is
-        restored after). Depends on the config only, never on the learner's weights or seed; an
-        upper bound of the best fit, as training need not reach the optimum.
+        Same head and same input scaling as the learner: bounded dimensions map onto [-1, 1] from
+        the observation space; unbounded ones are standardised with the mean and variance of the
+        ``observations`` being fitted (not the learner's running statistics). Mean squared error,
+        ``steps`` steps (None: ``FIT_STEPS``) of step size ``FIT_LEARNING_RATE`` from initial
+        weights seeded by ``FIT_SEED``, on one torch thread (the thread count is restored after).
+        Depends on the config only, never on the learner's weights, statistics or seed; an upper
+        bound of the best fit, as training need not reach the optimum.
         """
         steps = FIT_STEPS if steps is None else require_int("steps", steps, 1)
         threads = torch.get_num_threads()
         torch.set_num_threads(1)
         try:
             generator = torch.Generator().manual_seed(FIT_SEED)
-            net = build_mlp(self.obs_dim, self.config.hidden_sizes, self.n_actions, generator)
-            x = torch.from_numpy(np.asarray(observations, dtype=np.float32))
+            net = build_qnet(self.obs_dim, self.config.hidden_sizes, self.n_actions, self.config.head, generator)
+            observations = np.asarray(observations, dtype=np.float32).reshape(-1, self.obs_dim)
+            if self.config.scale_inputs:
+                scaler = InputScaler(self._low, self._high)
+                scaler.update(observations)
+                observations = scaler.transform(observations)
+            x = torch.from_numpy(observations)
             y = torch.from_numpy(np.asarray(targets).astype(np.float32))
             optimizer = torch.optim.Adam(net.parameters(), lr=FIT_LEARNING_RATE)
             for _ in range(steps):
@@ -205,10 +245,14 @@ class QNetLearner:
 
     # --- acting ----------------------------------------------------------------------------
 
+    def _inputs(self, obs: np.ndarray) -> torch.Tensor:
+        """Network inputs ``(B, obs_dim)`` float32 of raw observations (scaled unless ``scale_inputs`` is off)."""
+        obs = np.asarray(obs, dtype=np.float32).reshape(-1, self.obs_dim)
+        return torch.from_numpy(obs if self.scaler is None else self.scaler.transform(obs))
+
     def _q(self, obs: np.ndarray) -> torch.Tensor:
-        x = torch.from_numpy(np.asarray(obs, dtype=np.float32).reshape(-1, self.obs_dim))
         with torch.no_grad():
-            return self.online(x)
+            return self.online(self._inputs(obs))
 
     def act(self, obs: np.ndarray) -> np.ndarray:
         """Epsilon-greedy actions ``(B,)`` int64 for a batch ``(B, obs_dim)``; row ``j`` explores with epsilon
@@ -239,11 +283,14 @@ class QNetLearner:
     def learn(self, batch: Transitions) -> dict[str, float]:
         """Store the transitions and take the gradient updates now due; metrics of the last update.
 
-        Returns ``{}`` when no update happened, else ``td_loss``, ``penalty``, ``q_mean``, ``q_max``
+        Returns ``{}`` when no update happened, else ``td_loss`` (importance-weighted with prioritized
+        replay), ``penalty``, ``q_mean``, ``q_max``
         (of Q(s, a) on the minibatch), ``grad_norm`` (before clipping), ``epsilon``, ``updates``
         (total so far) and ``nonfinite`` (1.0 if the loss, Q or gradient were not finite; that
         update is then skipped and the run should be treated as diverged).
         """
+        if self.scaler is not None:
+            self.scaler.update(np.asarray(batch.obs, dtype=np.float32))  # as the replay stores them
         self.replay.add(batch)
         before = self.env_steps
         self.env_steps += len(batch)
@@ -260,8 +307,8 @@ class QNetLearner:
     def _update(self) -> dict[str, float]:
         cfg = self.config
         sample = self.replay.sample(cfg.batch_size, self.rng)
-        obs = torch.from_numpy(sample.obs)
-        next_obs = torch.from_numpy(sample.next_obs)
+        obs = self._inputs(sample.obs)
+        next_obs = self._inputs(sample.next_obs)
         action = torch.from_numpy(sample.action).unsqueeze(1)
         with torch.no_grad():
             q_target_next = self.target(next_obs)
@@ -270,9 +317,14 @@ class QNetLearner:
             y = torch.from_numpy(sample.reward).float() + torch.from_numpy(sample.discount).float() * boot
         q = self.online(obs).gather(1, action).squeeze(1)
         if cfg.loss == "huber":
-            td_loss = nn.functional.huber_loss(q, y, delta=cfg.huber_delta)
+            per_sample = nn.functional.huber_loss(q, y, reduction="none", delta=cfg.huber_delta)
         else:  # squared
-            td_loss = 0.5 * nn.functional.mse_loss(q, y)
+            per_sample = 0.5 * (q - y).square()
+        prioritized = isinstance(self.replay, PrioritizedReplay)
+        if prioritized:
+            beta = float(self.importance_exponent(self.env_steps))
+            per_sample = per_sample * torch.from_numpy(self.replay.weights(sample.index, beta)).float()
+        td_loss = per_sample.mean()
         if cfg.weight_penalty == "l2":
             penalty = sum(w.square().sum() for w in self._weights)
         elif cfg.weight_penalty == "l1":
@@ -290,6 +342,8 @@ class QNetLearner:
             self.optimizer.step()
             self.updates += 1
             self._follow_target()
+            if prioritized:
+                self.replay.set_priorities(sample.index, (y - q.detach()).double().numpy())
         return {
             "td_loss": td,
             "penalty": pen,
@@ -325,10 +379,21 @@ class QNetLearner:
             "counters": {"env_steps": self.env_steps, "updates": self.updates},
             "rng": {"numpy": self.rng.bit_generator.state, "torch": self.torch_generator.get_state()},
             "replay": self.replay.state_dict(),
+            "scaler": None if self.scaler is None else self.scaler.state_dict(),
         }
 
     def load_state_dict(self, state: dict[str, Any]) -> None:
-        """Restore a state from :meth:`state_dict` (directly or after a checkpoint round trip)."""
+        """Restore a state from :meth:`state_dict` (directly or after a checkpoint round trip).
+
+        ``ValueError`` when the state does not fit this config: input-scaler statistics missing while
+        ``scale_inputs`` is on (or present while it is off), or priorities missing for prioritized replay.
+        """
+        saved_scaler = state.get("scaler")
+        if (saved_scaler is None) != (self.scaler is None):
+            raise ValueError(
+                f"learner state {'has no' if saved_scaler is None else 'has'} input-scaler statistics ('scaler') "
+                f"but this learner has scale_inputs={self.scaler is not None}"
+            )
         self.online.load_state_dict(state["online"])
         self.target.load_state_dict(state["target"])
         opt = state["optimizer"]
@@ -341,3 +406,5 @@ class QNetLearner:
         self.rng.bit_generator.state = state["rng"]["numpy"]
         self.torch_generator.set_state(state["rng"]["torch"])
         self.replay.load_state_dict(state["replay"])
+        if self.scaler is not None:
+            self.scaler.load_state_dict(saved_scaler)
