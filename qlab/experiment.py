@@ -16,6 +16,7 @@ saved, so its unfinished episodes start again on resume).
 from __future__ import annotations
 
 import dataclasses
+import math
 import signal
 import sys
 import threading
@@ -210,7 +211,7 @@ class _Run:
                 f"run {run_dir} was started with torch_threads={threads}; resuming with "
                 f"torch_threads={cfg.torch_threads} would not repeat it exactly: use torch_threads={threads}")
         loop = LoopState(**saved["loop"])
-        recorded = [r for r in read_metrics(run_dir) if r[0] <= loop.step] if (run_dir / METRICS).exists() else []
+        recorded = read_metrics(run_dir, up_to_step=loop.step)
         if len(recorded) != loop.metric_rows:
             moved = runfolder.set_aside(run_dir, "damaged")
             notes.append(f"{run_dir / METRICS} holds {len(recorded)} rows up to step {loop.step:,} but its checkpoint "
@@ -278,7 +279,7 @@ class _Run:
             loop.step += copies.n
             tally.add(step.reward, step.base_reward)
             self.learned.add(metrics)
-            if metrics.get("nonfinite") or not all(np.isfinite(v) for v in metrics.values()):
+            if metrics and (metrics.get("nonfinite") or not math.isfinite(sum(metrics.values()))):  # inf or nan
                 return "diverged", loop.step
             if loop.step >= loop.next_eval:
                 now = time.perf_counter()
@@ -289,8 +290,6 @@ class _Run:
                 tick, ticked_at = time.perf_counter(), loop.step
             ended = step.terminated | step.truncated
             if ended.any():
-                if not np.all(np.isfinite(learner.value(step.next_obs[ended]))):
-                    return "diverged", loop.step
                 self._record_episodes(ended, step.success)
                 if loop.finished >= loop.next_checkpoint:
                     self._checkpoint()

@@ -107,6 +107,8 @@ class FeatureMap:
 
     n_features: int
     dim: int
+    #: every non-zero feature value is 1 (grid cells, tiles): Q is then a sum of weights of ``rows(obs)[0]``
+    binary: bool = False
 
     def __call__(self, obs: np.ndarray) -> np.ndarray:
         """Dense features ``(B, n_features)``."""
@@ -142,6 +144,8 @@ def rows_to_csr(idx: np.ndarray, val: np.ndarray, n_cols: int) -> sp.csr_array:
 class GridBins(FeatureMap):
     """A uniform grid of ``bins[k]`` cells along dimension ``k`` between ``low`` and ``high``."""
 
+    binary = True
+
     def __init__(self, low: np.ndarray, high: np.ndarray, bins: list[int]):
         self.bins = self._set_box(low, high, bins)
         self.width = (self.high - self.low) / self.bins
@@ -169,6 +173,8 @@ class TileCoder(FeatureMap):
     covers the displaced range. No hashing: feature ``j * T + t`` is tile ``t`` of tiling ``j``
     with ``T = prod(bins + 1)`` tiles per tiling.
     """
+
+    binary = True
 
     def __init__(self, low: np.ndarray, high: np.ndarray, bins: list[int], n_tilings: int, offsets: str = "asymmetric"):
         require_choice("tile_offsets", offsets, TILE_OFFSETS)

@@ -3,7 +3,7 @@
 Layout of one run folder::
 
     config.yaml        resolved config (written once, atomically)
-    metrics.csv        long table: step, tag, value (rewritten atomically at each checkpoint)
+    metrics.csv        long table: step, tag, value (rows appended and synced at each checkpoint)
     tb/                tensorboard events (scalars, config text); tb/hparams/ the hparams entry
     checkpoint/        learner and loop state (see qlab.checkpoint)
     summary.json       final numbers and status (finished or diverged)
@@ -57,27 +57,52 @@ def file_digest(path: Path) -> str:
     return hashlib.sha256(Path(path).read_bytes()).hexdigest()
 
 
-def read_metrics(run_dir: Path) -> list[tuple[int, str, float]]:
-    """Rows (step, tag, value) of a run's metrics table; empty if none yet."""
+def read_metrics(run_dir: Path, up_to_step: int | None = None) -> list[tuple[int, str, float]]:
+    """Rows (step, tag, value) of a run's metrics table; empty if none yet.
+
+    ``up_to_step``: only the rows up to that step, read for a resume; reading stops at the first
+    later row or at a torn last line (a crash while rows were being appended).
+    """
     path = Path(run_dir) / METRICS
     if not path.exists():
         return []
+    rows = []
     with path.open(newline="") as fh:
-        return [(int(r["step"]), r["tag"], float(r["value"])) for r in csv.DictReader(fh)]
+        for record in csv.DictReader(fh):
+            if up_to_step is None:
+                rows.append((int(record["step"]), record["tag"], float(record["value"])))
+                continue
+            try:
+                row = (int(record["step"]), record["tag"], float(record["value"]))
+            except (TypeError, ValueError):
+                break
+            if row[0] > up_to_step:
+                break
+            rows.append(row)
+    return rows
+
+
+def _csv_lines(rows: list[tuple[int, str, float]]) -> str:
+    buf = io.StringIO()
+    csv.writer(buf, lineterminator="\n").writerows((s, t, repr(v)) for s, t, v in rows)
+    return buf.getvalue()
 
 
 class Recorder:
     """Collects scalars for one run; mirrors them to tensorboard and to the metrics table.
 
-    Rows live in memory and reach ``metrics.csv`` at each :meth:`commit` (called with every
-    checkpoint), so the table on disk always matches the last checkpoint. On resume the table
-    is reloaded up to the checkpoint's step and tensorboard purges events after that step
+    Rows live in memory and are appended to ``metrics.csv`` at each :meth:`commit` (called with
+    every checkpoint, the file synced), so the table on disk holds at least the rows of the last
+    checkpoint and a commit costs only its new rows. On resume the table is rewritten atomically
+    with the rows up to the checkpoint's step, and tensorboard purges events after that step
     (``purge_step = step + 1``: rows at the checkpoint's own step were committed with it).
     """
 
     def __init__(self, run_dir: Path, resume_step: int = 0, tensorboard: bool = True):
         self.run_dir = Path(run_dir)
-        self.rows = [row for row in read_metrics(self.run_dir) if row[0] <= resume_step] if resume_step else []
+        self.rows = read_metrics(self.run_dir, up_to_step=resume_step) if resume_step else []
+        atomic_write_text(self.run_dir / METRICS, "step,tag,value\n" + _csv_lines(self.rows))
+        self.committed = len(self.rows)
         self.writer = None
         if tensorboard:
             from torch.utils.tensorboard import SummaryWriter
@@ -103,12 +128,12 @@ class Recorder:
             self.writer.add_text(tag, f"```\n{body}\n```", 0)
 
     def commit(self) -> None:
-        """Write the metrics table atomically and flush tensorboard."""
-        buf = io.StringIO()
-        out = csv.writer(buf, lineterminator="\n")
-        out.writerow(["step", "tag", "value"])
-        out.writerows((s, t, repr(v)) for s, t, v in self.rows)
-        atomic_write_text(self.run_dir / METRICS, buf.getvalue())
+        """Append the rows recorded since the last commit to the metrics table, sync it, flush tensorboard."""
+        with (self.run_dir / METRICS).open("a", encoding="utf-8", newline="") as fh:
+            fh.write(_csv_lines(self.rows[self.committed:]))
+            fh.flush()
+            os.fsync(fh.fileno())
+        self.committed = len(self.rows)
         if self.writer is not None:
             self.writer.flush()
 

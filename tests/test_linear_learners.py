@@ -6,7 +6,7 @@ import gymnasium as gym
 import numpy as np
 import pytest
 from gymnasium import spaces
-from small_mdp import GAMMA, N_ACTIONS, N_STATES, random_mdp, state_space
+from small_mdp import GAMMA, N_ACTIONS, N_STATES, one_row_rule, random_mdp, state_space
 
 import qlab  # noqa: F401  (registers the qlab/ gymnasium ids)
 from qlab.checkpoint import load_checkpoint, save_checkpoint
@@ -142,19 +142,14 @@ def test_linear_batch_update_on_two_states_by_hand():
 
 
 def test_linear_act_on_one_observation_repeats_the_one_row_rule():
-    # epsilon-greedy for one observation (Sutton & Barto 2018, sec. 2.3) in the draw order used before batches
+    # epsilon-greedy for one observation (Sutton & Barto 2018, sec. 2.3) in the learners' draw order
     learner = two_state_tiles()
     learner.weights[:, 1] = [0.5, 0.0, 1.0, 2.5]  # Q(A, .) = [1.5, 1.5] ties (a tie pick draws), Q(B, .) = [2.5, 3]
     rng, epsilon = np.random.default_rng(0), 0.1
     for t in range(60):
         x = np.array([[0.25 if t % 3 else 0.75]], dtype=np.float32)
         q = learner.q_values(x)[0]
-        if rng.random() < epsilon:
-            expected = int(rng.integers(q.size))
-        else:
-            best = np.flatnonzero(q == q.max())
-            expected = int(best[rng.integers(best.size)]) if best.size > 1 else int(best[0])
-        assert learner.act(x)[0] == expected
+        assert learner.act(x)[0] == one_row_rule(q, epsilon, rng)
     assert learner.act_count == 60
 
 

@@ -4,11 +4,13 @@ from __future__ import annotations
 
 import numpy as np
 import pytest
+import scipy.stats
 from gymnasium import spaces
-from small_mdp import GAMMA, N_ACTIONS, N_STATES, random_mdp, state_space
+from small_mdp import GAMMA, N_ACTIONS, N_STATES, one_row_rule, random_mdp, state_space
 
 from qlab.checkpoint import load_checkpoint, save_checkpoint
 from qlab.learners import build_learner
+from qlab.learners.linear import LinearConfig, LinearQ, epsilon_greedy
 from qlab.learners.protocol import Transitions
 from qlab.learners.schedules import ScheduleConfig
 from qlab.learners.tabular import TabularConfig, TabularQ
@@ -209,15 +211,6 @@ def test_batch_update_on_two_states_by_hand():
     np.testing.assert_allclose(single.table, [[2.8, 0.0], [2.0, 4.0]], rtol=1e-14)
 
 
-def one_row_rule(q: np.ndarray, epsilon: float, rng: np.random.Generator) -> int:
-    """Epsilon-greedy for one observation (Sutton & Barto 2018, sec. 2.3), random tie-breaking, in the draw
-    order the learners used before acting on batches: a uniform, then an action or a tie pick."""
-    if rng.random() < epsilon:
-        return int(rng.integers(q.size))
-    best = np.flatnonzero(q == q.max())
-    return int(best[rng.integers(best.size)]) if best.size > 1 else int(best[0])
-
-
 def test_act_on_one_observation_repeats_the_one_row_rule():
     config = TabularConfig(bins=[N_STATES], epsilon=ScheduleConfig("linear", start=1.0, end=0.1, horizon=60.0))
     learner = TabularQ(state_space(), spaces.Discrete(N_ACTIONS), config, seed=6)
@@ -244,3 +237,38 @@ def test_act_on_a_batch_counts_every_row_and_breaks_ties_at_random():
     np.testing.assert_array_equal(actions[[1, 2, 4]], [0, 1, 0])  # unique maxima
     tied = actions.reshape(40, N_STATES)[:, [0, 3]]
     assert set(tied[:, 0]) == set(tied[:, 1]) == {0, 1}  # both tied actions chosen, 40 draws each
+
+
+def test_exploring_and_tie_breaking_actions_are_uniform():
+    # epsilon-greedy explores with a uniformly random action and breaks greedy ties uniformly (Sutton & Barto
+    # 2018, sec. 2.3); the counts are checked against uniform frequencies with scipy.stats.chisquare
+    q = np.array([[0.0, 2.0, 2.0, 1.0, 2.0]])
+    rng = np.random.default_rng(0)
+    explored = epsilon_greedy(np.repeat(q, 20_000, axis=0), 1.0, rng)
+    greedy = epsilon_greedy(np.repeat(q, 20_000, axis=0), 0.0, rng)
+    assert scipy.stats.chisquare(np.bincount(explored, minlength=5)).pvalue > 0.01
+    assert set(np.unique(greedy)) == {1, 2, 4}
+    assert scipy.stats.chisquare(np.bincount(greedy, minlength=5)[[1, 2, 4]]).pvalue > 0.01
+    # with epsilon 0.25 a quarter of the rows explore: 3/4 + 1/4 * 3/5 of them pick a tied maximum
+    mixed = epsilon_greedy(np.repeat(q, 20_000, axis=0), 0.25, rng)
+    assert np.isin(mixed, [1, 2, 4]).mean() == pytest.approx(0.75 + 0.25 * 0.6, abs=0.01)
+
+
+def test_table_update_equals_the_linear_learner_on_grid_cells():
+    # a table is linear in one-hot cell features (Sutton & Barto 2018, sec. 9.3): TabularQ's update on cell
+    # indices must give LinearQ's numbers on GridBins features with an unnormalised step, duplicates included
+    config = TabularConfig(bins=[N_STATES], step_size=ScheduleConfig("polynomial", 1.0, power=0.8),
+                           step_size_count="visits")
+    table = TabularQ(state_space(), spaces.Discrete(N_ACTIONS), config, seed=0)
+    linear = LinearQ(state_space(), spaces.Discrete(N_ACTIONS),
+                     LinearConfig(features="grid", bins=[N_STATES], step_size=config.step_size,
+                                  step_size_count="visits", normalise_step=False), seed=0)
+    rng = np.random.default_rng(3)
+    states = all_states()
+    for _ in range(50):
+        s, s2 = rng.integers(N_STATES, size=(2, 8))
+        batch = Transitions(states[s], rng.integers(N_ACTIONS, size=8), rng.normal(size=8), states[s2],
+                            rng.random(8) < 0.2, np.zeros(8, dtype=bool))
+        assert table.learn(batch) == linear.learn(batch)
+    np.testing.assert_array_equal(table.table, linear.weights)
+    np.testing.assert_array_equal(table.visits, linear.visits)

@@ -100,21 +100,32 @@ def action_total(space: spaces.Space) -> int:
 
 def epsilon_greedy(q: np.ndarray, epsilon: np.ndarray | float, rng: np.random.Generator) -> np.ndarray:
     """Per row of ``q`` ``(B, n_actions)``: a uniformly random action with probability ``epsilon`` (per row
-    or shared), else a greedy one, ties broken at random; ``(B,)`` int64.
+    or shared), else a greedy one, ties broken uniformly at random; ``(B,)`` int64.
 
-    Draws from ``rng``: ``B`` uniforms, one action index per exploring row, then one tie pick per
-    greedy row with tied maxima (for ``B = 1`` the draws of the one-row rule, in its order).
+    Draws ``B x (n_actions + 1)`` uniforms from ``rng`` in one call whatever happens: per row, the
+    first decides whether to explore; the rest are i.i.d., so the index of their largest value is a
+    uniformly random action, and the index of their largest value among the tied maxima of ``q`` is
+    a uniformly random greedy action.
     """
-    explore = rng.random(q.shape[0]) < epsilon
-    action = q.argmax(axis=1)
-    action[explore] = rng.integers(q.shape[1], size=int(explore.sum()))
-    best = q == q.max(axis=1, keepdims=True)
-    ties = best.sum(axis=1)
-    tied = np.flatnonzero(~explore & (ties > 1))
-    if tied.size:
-        pick = rng.integers(ties[tied])  # the pick-th tied maximum of each row
-        action[tied] = (np.cumsum(best[tied], axis=1) > pick[:, None]).argmax(axis=1)
-    return action
+    draws = rng.random((q.shape[0], q.shape[1] + 1))
+    explore = draws[:, 0] < epsilon
+    scores = draws[:, 1:]
+    greedy = np.where(q == q.max(axis=1, keepdims=True), scores, -1.0).argmax(axis=1)
+    return np.where(explore, scores.argmax(axis=1), greedy)
+
+
+def sum_by_key(keys: np.ndarray, values: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, ...]:
+    """The distinct ``keys`` ``(K,)`` and the sums of ``values`` and ``counts`` over each; returned as given
+    when the keys are already distinct (each sum taken in the keys' order, as ``np.bincount`` does)."""
+    order = np.argsort(keys, kind="stable")
+    ordered = keys[order]
+    first = np.empty(keys.size, dtype=bool)
+    first[:1] = True
+    np.not_equal(ordered[1:], ordered[:-1], out=first[1:])
+    if first.all():
+        return keys, values, counts
+    group = np.cumsum(first) - 1
+    return ordered[first], np.bincount(group, weights=values[order]), np.bincount(group, weights=counts[order])
 
 
 def rng_state(rng: np.random.Generator) -> dict[str, Any]:
@@ -270,8 +281,14 @@ class LinearQ:
 
     def q_values(self, obs: np.ndarray) -> np.ndarray:
         """Q for every action, ``(B, n_actions)``."""
+        return self._features_and_q(obs)[2]
+
+    def _features_and_q(self, obs: np.ndarray) -> tuple[np.ndarray, np.ndarray, np.ndarray]:
+        """Sparse feature rows ``(idx, val)`` of ``obs`` and Q ``(B, n_actions)``."""
         idx, val = self.features.rows(obs)
-        return np.einsum("bk,bka->ba", val, self.weights[idx])
+        if self.features.binary:  # a sum of the active weights (for a table: one row of it)
+            return idx, val, self.weights[idx].sum(axis=1)
+        return idx, val, np.einsum("bk,bka->ba", val, self.weights[idx])
 
     def value(self, obs: np.ndarray) -> np.ndarray:
         """max_a Q(obs, a), ``(B,)``."""
@@ -285,7 +302,7 @@ class LinearQ:
         """Epsilon-greedy actions ``(B,)`` int64 for a batch ``(B, obs_dim)``; row ``j`` explores with
         epsilon at ``act_count + j`` (the schedule counts transitions, ``B`` per call)."""
         q = self.q_values(obs)
-        epsilon = np.asarray(self.epsilon(self.act_count + np.arange(q.shape[0])))
+        epsilon = self.epsilon.over(self.act_count, q.shape[0])
         self.act_count += q.shape[0]
         return epsilon_greedy(q, epsilon, self.rng)
 
@@ -318,30 +335,34 @@ class LinearQ:
     def learn(self, batch: Transitions) -> dict[str, float]:
         """One semi-gradient Q-learning update from a batch of transitions."""
         b = len(batch)
-        idx, val = self.features.rows(np.concatenate([batch.obs, batch.next_obs]))  # one call for s and s'
-        q = np.einsum("bk,bka->ba", val, self.weights[idx])
+        idx, val, q = self._features_and_q(np.concatenate([batch.obs, batch.next_obs]))  # one call for s and s'
         idx, val = idx[:b], val[:b]
         action = np.asarray(batch.action, dtype=np.int64).reshape(-1)
         bootstrap = np.where(np.asarray(batch.terminated, dtype=bool), 0.0, q[b:].max(axis=1))
         delta = np.asarray(batch.reward, dtype=np.float64) + self.gamma * bootstrap - q[np.arange(b), action]
-        scale = np.einsum("bk,bk->b", val, val) if self.normalise else np.ones(b)
+        scale = (val * val).sum(axis=1) if self.normalise else np.ones(b)
         contribution = np.divide(delta, scale, out=np.zeros_like(delta), where=scale > 0)[:, None] * val
         keys = idx * self.n_actions + action[:, None]  # (B, k) flat positions in the weight table
-        if b == 1:  # the columns of one row are distinct
-            where, total, hits = keys[0], contribution[0], (val[0] != 0).astype(np.float64)
-        else:
-            where, inverse = np.unique(keys.ravel(), return_inverse=True)
-            total = np.bincount(inverse, weights=contribution.ravel(), minlength=where.size)
-            hits = np.bincount(inverse, weights=(val != 0).ravel(), minlength=where.size)
+        alpha = self._apply(keys.ravel(), contribution.ravel(), (val != 0).ravel().astype(np.float64))
+        return self._metrics(delta, q[:b], alpha)
+
+    def _apply(self, keys: np.ndarray, contribution: np.ndarray, active: np.ndarray) -> np.ndarray:
+        """Move each flat weight in ``keys`` by its step size times the mean ``contribution`` over the entries
+        naming it (``active``: 1 where the feature is non-zero); count visits and transitions; the step sizes."""
+        where, total, hits = sum_by_key(keys, contribution, active)
         flat_weights, flat_visits = self.weights.reshape(-1), self.visits.reshape(-1)
         alpha = np.asarray(self.step_size(flat_visits[where] if self.by_visits else self.learn_count))
         flat_weights[where] += alpha * total / np.maximum(hits, 1.0)
         flat_visits[where] += hits.astype(np.int64)
-        self.learn_count += b
+        return alpha
+
+    def _metrics(self, delta: np.ndarray, q: np.ndarray, alpha: np.ndarray) -> dict[str, float]:
+        """Learning metrics of a batch: TD errors, Q(s, .) before the update ``(B, n_actions)``, step sizes."""
+        self.learn_count += delta.size
         return {
-            "abs_td_error": float(np.abs(delta).mean()),
-            "q_mean": float(q[:b].mean()),  # Q(s, .) before the update
-            "q_max": float(q[:b].max()),
+            "abs_td_error": float(np.abs(delta).sum()) / delta.size,
+            "q_mean": float(q.sum()) / q.size,
+            "q_max": float(q.max()),
             "step_size": float(alpha.max()),
             "epsilon": float(self.epsilon(self.act_count)),
         }

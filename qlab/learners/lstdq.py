@@ -277,7 +277,7 @@ class LSTDQ:
             u = self.head.greedy(obs) + self.exploration_std * self.rng.standard_normal((b, self.head.action_dim))
             self.act_count += b
             return np.clip(u, self.head.low, self.head.high).astype(np.float32)
-        epsilon = np.asarray(self.epsilon(self.act_count + np.arange(b)))
+        epsilon = self.epsilon.over(self.act_count, b)
         self.act_count += b
         return epsilon_greedy(self.head.q_values(obs), epsilon, self.rng)
 

@@ -36,6 +36,8 @@ class Schedule:
             require_within("polynomial schedule power", self.power, 0.5, 1.0, open_low=True)
 
     def __call__(self, n: np.ndarray | int) -> np.ndarray | float:
+        if self.kind == "constant" and np.ndim(n) == 0:
+            return self.start
         n = np.asarray(n, dtype=np.float64)
         if self.kind == "constant":
             out = np.full_like(n, self.start)
@@ -47,6 +49,10 @@ class Schedule:
         else:
             out = self.start / (n + 1.0) ** self.power
         return float(out) if out.ndim == 0 else out
+
+    def over(self, first: int, count: int) -> np.ndarray | float:
+        """The rates at counts ``first, ..., first + count - 1``; one float when the schedule is constant."""
+        return self.start if self.kind == "constant" else self(first + np.arange(count))
 
 
 @dataclass

@@ -23,6 +23,7 @@ from gymnasium import spaces
 
 from qlab.features import BINS_NOTE, FeatureConfig, GridBins, feature_count, resolve_bounds
 from qlab.learners.linear import LinearQ, QLearningConfig, action_total, function_values
+from qlab.learners.protocol import Transitions
 from qlab.validation import require_int_list
 
 
@@ -67,6 +68,18 @@ class TabularQ(LinearQ):
         grid = self.features
         coords = np.stack(np.unravel_index(np.arange(grid.n_features), tuple(grid.bins)), axis=1)
         return grid.low + (coords + 0.5) * grid.width
+
+    def learn(self, batch: Transitions) -> dict[str, float]:
+        """:meth:`LinearQ.learn` on one-hot cells, computed on the cell indices directly (same numbers)."""
+        b = len(batch)
+        cells = self.features.index(np.concatenate([batch.obs, batch.next_obs]))  # one call for s and s'
+        q = self.weights[cells]
+        action = np.asarray(batch.action, dtype=np.int64).reshape(-1)
+        keys = cells[:b] * self.n_actions + action
+        bootstrap = np.where(np.asarray(batch.terminated, dtype=bool), 0.0, q[b:].max(axis=1))
+        delta = np.asarray(batch.reward, dtype=np.float64) + self.gamma * bootstrap - self.weights.reshape(-1)[keys]
+        alpha = self._apply(keys, delta, np.ones(b))
+        return self._metrics(delta, q[:b], alpha)
 
     def initialise_from(self, values: Callable[[np.ndarray], np.ndarray]) -> None:
         """Set ``Q(cell, a) = values(centre of cell)`` for every action (``values``: ``(B, d)`` -> ``(B,)``).

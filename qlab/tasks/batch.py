@@ -59,25 +59,23 @@ class CopyStreams:
             raise ValueError(f"draws need size (N, ...) with N = {len(self.generators)} copies, got size {size!r}")
         return shape
 
-    def _rows(self, shape: tuple[int, ...], draw: Callable[[np.random.Generator, int], np.ndarray]) -> np.ndarray:
-        return np.concatenate([draw(g, i) for i, g in enumerate(self.generators)]).reshape(shape)
+    def _rows(self, shape: tuple[int, ...],
+              draw: Callable[[np.random.Generator, tuple[int, ...]], np.ndarray]) -> np.ndarray:
+        """Row ``i`` of ``shape`` drawn by generator ``i`` as ``draw(generator, (1, *shape[1:]))``."""
+        row = (1, *shape[1:])
+        return np.concatenate([draw(g, row) for g in self.generators]).reshape(shape)
 
     def uniform(self, low: Any = 0.0, high: Any = 1.0, size: int | Sequence[int] | None = None) -> np.ndarray:
-        """Uniform draws on ``[low, high)`` (broadcast to ``size``)."""
-        shape = self._shape(size)
-        low, high = np.broadcast_to(low, shape), np.broadcast_to(high, shape)
-        return self._rows(shape, lambda g, i: g.uniform(low[i : i + 1], high[i : i + 1], size=(1, *shape[1:])))
+        """Uniform draws on ``[low, high)`` (broadcast to ``size``): ``low + (high - low) * U``, numpy's own formula."""
+        return low + np.subtract(high, low) * self._rows(self._shape(size), lambda g, row: g.random(row))
 
     def standard_normal(self, size: int | Sequence[int] | None = None, dtype: Any = np.float64) -> np.ndarray:
         """Standard normal draws."""
-        shape = self._shape(size)
-        return self._rows(shape, lambda g, i: g.standard_normal(size=(1, *shape[1:]), dtype=dtype))
+        return self._rows(self._shape(size), lambda g, row: g.standard_normal(size=row, dtype=dtype))
 
     def normal(self, loc: Any = 0.0, scale: Any = 1.0, size: int | Sequence[int] | None = None) -> np.ndarray:
-        """Normal draws with mean ``loc`` and standard deviation ``scale`` (broadcast to ``size``)."""
-        shape = self._shape(size)
-        loc, scale = np.broadcast_to(loc, shape), np.broadcast_to(scale, shape)
-        return self._rows(shape, lambda g, i: g.normal(loc[i : i + 1], scale[i : i + 1], size=(1, *shape[1:])))
+        """Normal draws with mean ``loc`` and standard deviation ``scale``: ``loc + scale * Z``, numpy's own formula."""
+        return loc + np.asarray(scale) * self.standard_normal(size)
 
 
 def copy_mask(n: int, which: np.ndarray | None) -> np.ndarray:
@@ -174,7 +172,7 @@ class TaskBatch:
         count = self.n if every else rows.size
         if count == 0:
             raise ValueError("step needs at least one active copy")
-        if self.done[rows].any():
+        if (self.done.any() if every else self.done[rows].any()):
             raise RuntimeError("some active copies have no running episode; reset them before stepping")
         action = np.asarray(action)
         if action.shape[:1] != (count,):

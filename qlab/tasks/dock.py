@@ -189,24 +189,31 @@ class Dock(ControlTask):
             v += self.velocity_noise_m_s * rng.standard_normal(v.shape[0])
             np.clip(v, -self.velocity_limit_m_s, self.velocity_limit_m_s, out=v)
         h = self.dt_s / self.substeps
+        h_per_kg = h / self.mass_kg
         c1, c2 = self.linear_drag_N_s_per_m, self.quadratic_drag_N_s2_per_m2
         failed = np.zeros(x.shape[0], dtype=bool)
-        for _ in range(self.substeps):
-            v_new = v + h * (thrust_N - c1 * v - c2 * v * np.abs(v)) / self.mass_kg
+        any_failed = False
+        for _ in range(self.substeps):  # explicit Euler sub-steps: m dv/dt = thrust - (c1 + c2 |v|) v, dx/dt = v
+            v_new = v + h_per_kg * (thrust_N - (c1 + c2 * np.abs(v)) * v)
             x_new = x + h * v_new
             at_quay = x_new > self.quay_position_m
-            strike = at_quay & (v_new > self.contact_speed_m_s)
-            x_new = np.where(at_quay, self.quay_position_m, x_new)
-            v_new = np.where(at_quay & ~strike, 0.0, v_new)
             left_channel = x_new < self.channel_end_m
-            x_new = np.where(left_channel, self.channel_end_m, x_new)
-            live = ~failed
-            x = np.where(live, x_new, x)
-            v = np.where(live, v_new, v)
-            failed |= live & (strike | left_channel)
+            if not (any_failed or (at_quay | left_channel).any()):  # open water: nothing stops a vessel
+                x, v = x_new, v_new
+                continue
+            strike = at_quay & (v_new > self.contact_speed_m_s)
+            x_new[at_quay] = self.quay_position_m
+            v_new[at_quay & ~strike] = 0.0
+            x_new[left_channel] = self.channel_end_m
+            x = np.where(failed, x, x_new)  # a failed vessel stays where it failed
+            v = np.where(failed, v, v_new)
+            failed |= strike | left_channel
+            any_failed = bool(failed.any())
         success = ~failed & (np.abs(x) <= self.berth_half_length_m) & (np.abs(v) < self.contact_speed_m_s)
+        next_state = np.empty((x.shape[0], 2))
+        next_state[:, 0], next_state[:, 1] = x, v
         return StepOutcome(
-            next_state=np.stack([x, v], axis=1),
+            next_state=next_state,
             base_reward=success.astype(np.float64),
             terminated=success | failed,
             success=success,
@@ -214,7 +221,7 @@ class Dock(ControlTask):
 
     def observe(self, state: np.ndarray) -> np.ndarray:
         """``[position_m, velocity_m_s]`` as float32, clipped to the observation bounds."""
-        clipped = np.clip(np.asarray(state, dtype=np.float64), self.state_low, self.state_high)
+        clipped = np.minimum(np.maximum(np.asarray(state, dtype=np.float64), self.state_low), self.state_high)
         # Rounding to float32 is monotone, so clipped values stay inside the float32 bounds.
         return clipped.astype(np.float32)
 
