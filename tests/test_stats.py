@@ -17,6 +17,7 @@ from qlab.compare.stats import (
     few_seeds_warning,
     iqm,
     loss_from_best,
+    median_ci,
     median_is_censored,
     median_ratio,
     performance_profile,
@@ -265,6 +266,25 @@ def test_median_ratio_matches_scipy_two_sample_bootstrap():
     for ours, theirs in ((ratio.low, res.confidence_interval.low), (ratio.high, res.confidence_interval.high)):
         assert abs(ours - theirs) <= mc_tolerance(dist, 0.95, n_resamples) + atom_span(dist, theirs)
     assert ratio.low < ratio.value < ratio.high
+
+
+def test_median_ci_matches_scipy_bootstrap_and_follows_the_censoring_rule():
+    n_resamples = 20_000
+    res = stats.bootstrap(  # scipy.stats.bootstrap, percentile method
+        (STEPS_A,), np.median, n_resamples=n_resamples, method="percentile", vectorized=True,
+        rng=np.random.default_rng(24),
+    )
+    low, high = median_ci(STEPS_A, 0.95, n_resamples, seed=25)
+    dist = res.bootstrap_distribution
+    # a resampled median is one of the 15 values: Monte Carlo error plus the atoms either side (see above)
+    for ours, theirs in ((low, res.confidence_interval.low), (high, res.confidence_interval.high)):
+        assert abs(ours - theirs) <= mc_tolerance(dist, 0.95, n_resamples) + atom_span(dist, theirs)
+    assert median_ci(np.array([100.0, np.inf, 300.0, np.inf])) is None  # 2 of 4 never: censored, no interval
+    # 2 of 5 never: a resample is censored with P(Binomial(5, 0.4) >= 3) = 0.317 > 0.025, so no upper end
+    low, high = median_ci(np.array([100.0, 200.0, 300.0, np.inf, np.inf]))
+    # the lowest median, 100, takes 3 or more draws of it: P(Binomial(5, 0.2) >= 3) = 10 * 0.2^3 * 0.8^2
+    # + 5 * 0.2^4 * 0.8 + 0.2^5 = 0.058 > 0.025, so the lower end is 100
+    assert low == 100.0 and high == np.inf
 
 
 @pytest.mark.parametrize(

@@ -12,11 +12,13 @@ import numpy as np
 from matplotlib.backends.backend_agg import FigureCanvasAgg
 from matplotlib.colors import ListedColormap
 from matplotlib.figure import Figure
+from matplotlib.lines import Line2D
+from matplotlib.ticker import NullFormatter
 from PIL import Image
 
 from qlab.compare.diagnostics import LQMaps, ValueMaps
 from qlab.compare.measures import ArmMeasures, Band, Estimate
-from qlab.compare.runs import START_AT_POTENTIAL_ARM, TaskSetting, arm_sort_key, position
+from qlab.compare.runs import START_AT_POTENTIAL_ARM, arm_sort_key
 
 #: colour of each known arm (Okabe & Ito colour-blind-safe palette), used by every figure
 ARM_COLOURS = {
@@ -109,35 +111,87 @@ def interval_figure(
     return fig
 
 
-def settings_figure(
-    settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], key: str, threshold: float,
-) -> Figure:
-    """Median steps to threshold against the task key's value (list midpoints), one panel per learner.
+#: a value axis spanning more than this factor (largest over smallest value drawn) is drawn on a log scale
+#: (common practice, no source)
+LOG_SPAN = 10.0
+#: horizontal offset between neighbouring arms at one setting, as a share of the closest settings' spacing
+DODGE = 0.06
 
-    ``measures[i]`` are the measures of ``settings[i]``. Filled markers: reached by more than half
-    the runs; hollow, at the budget: a lower bound (half or more never reached the threshold).
+
+def _dodged(xs: list[float], n_arms: int) -> np.ndarray:
+    """Offsets that keep the arms drawn at one setting apart, centred on the setting (shape ``(n_arms,)``)."""
+    spacing = float(np.min(np.diff(sorted(xs)))) if len(xs) > 1 else 1.0
+    return (np.arange(n_arms) - (n_arms - 1) / 2.0) * DODGE * spacing
+
+
+def _arm_at_settings(ax, x: np.ndarray, ms: list[ArmMeasures], colour: str, arm: str) -> list[float]:
+    """One arm across the settings: medians joined by a line with interval bars, censored medians as open
+    triangles pointing up at the budget. Returns the values drawn (for the axis scale)."""
+    censored = np.array([m.median_censored for m in ms])
+    centre = np.array([np.nan if c else m.median_threshold_steps() for c, m in zip(censored, ms, strict=True)])
+    ax.plot(x, centre, "o-", color=colour, linewidth=1.6, markersize=5, label=arm, zorder=3)
+    top = np.array([m.budget for m in ms], dtype=np.float64)
+    ends = np.array([m.steps_interval if m.steps_interval else (np.nan, np.nan) for m in ms])
+    ax.vlines(x, ends[:, 0], np.fmin(ends[:, 1], top), color=colour, linewidth=1.2, zorder=2)
+    capped = np.where(np.isinf(ends), np.nan, ends)  # an open end gets no cap: its bar runs into the budget line
+    ax.plot(np.repeat(x, 2), capped.ravel(), "_", color=colour, markersize=7, markeredgewidth=1.2, zorder=2)
+    ax.plot(x[censored], top[censored], "^", color=colour, markerfacecolor="white", markeredgewidth=1.4,
+            markersize=7, linestyle="none", zorder=4)
+    drawn = np.concatenate([centre, ends.ravel(), top[censored]])
+    return drawn[np.isfinite(drawn)].tolist()
+
+
+def settings_figure(
+    positions: list[float], ticks: list[str], xlabel: str, measures: list[dict[str, dict[str, ArmMeasures]]],
+    threshold: float,
+) -> Figure:
+    """Median steps to threshold against the task setting, one panel per learner, one line per arm.
+
+    ``measures[i]`` are the measures of the setting drawn at ``positions[i]`` (tick label ``ticks[i]``).
+    Filled circles: medians, with their bootstrap interval as a capped bar (no cap at the top: no upper
+    end, the bar cut at the budget); open triangles pointing up at the budget (dashed): censored
+    medians, lower bounds.
+    The value axis is logarithmic when the values drawn span more than :data:`LOG_SPAN`.
     """
     learners = sorted({lr for ms in measures for lr in ms})
-    fig, axes = _figure(len(learners), height=PANEL[1] + 0.3)
-    xs = [position(s.values[key]) for s in settings]
-    ranged = any(isinstance(s.values[key], tuple) for s in settings)
+    fig, axes = _figure(len(learners), height=PANEL[1] + 0.4, width=PANEL[0] + 1.4)
     for ax, learner in zip(axes, learners, strict=True):
         arms = sorted({a for ms in measures for a in ms.get(learner, {})}, key=arm_sort_key)
-        for arm in arms:
-            points = [(x, ms[learner][arm]) for x, ms in zip(xs, measures, strict=True) if arm in ms.get(learner, {})]
-            colour = arm_colour(arm)
-            x = [p for p, _ in points]
-            y = [m.budget if m.median_censored else m.median_threshold_steps() for _, m in points]
-            ax.plot(x, y, color=colour, linewidth=1.6, label=arm)
-            ax.scatter(x, y, s=30, zorder=3, edgecolors=colour, linewidths=1.4,
-                       facecolors=["white" if m.median_censored else colour for _, m in points])
-        ax.set_ylim(bottom=0)
-        ax.set_xticks(xs, [f"{x:g}" for x in xs])
-        ax.set_xlabel(f"{key} (midpoint of the range)" if ranged else key)
+        drawn = []
+        for offset, arm in zip(_dodged(positions, len(arms)), arms, strict=True):
+            x, ms = _arm_settings(positions, measures, learner, arm)
+            drawn += _arm_at_settings(ax, x + offset, ms, arm_colour(arm), arm)
+        budget = max(m.budget for ms in measures for m in ms.get(learner, {}).values())
+        ax.axhline(budget, color="#888888", linewidth=0.8, linestyle="--", zorder=1)
+        if min(drawn) > 0 and max(drawn) > LOG_SPAN * min(drawn):
+            _log_steps_axis(ax)
+        ax.set_xticks(positions, ticks)
+        ax.set_xlabel(xlabel)
         ax.set_ylabel(f"median environment steps to success >= {threshold:g}")
-        _title(ax, f"{learner} (hollow: lower bound)")
-        ax.legend(fontsize=7.5, frameon=False)
+        _title(ax, f"{learner} (dashed: budget)")
+        bound = Line2D([], [], color="#555555", marker="^", markerfacecolor="white", linestyle="none",
+                       label="median > budget")
+        ax.legend(handles=[*ax.get_legend_handles_labels()[0], bound], fontsize=7.5, frameon=False,
+                  loc="upper left", bbox_to_anchor=(1.0, 1.0))
     return fig
+
+
+def _log_steps_axis(ax) -> None:
+    """A logarithmic step axis labelled in plain numbers at 1, 2 and 5 times powers of ten."""
+    ax.set_yscale("log")
+    low, high = ax.get_ylim()
+    powers = 10.0 ** np.arange(np.floor(np.log10(low)), np.ceil(np.log10(high)) + 1)
+    ticks = [t for t in np.outer(powers, [1.0, 2.0, 5.0]).ravel() if low <= t <= high]
+    ax.set_yticks(ticks, [f"{t:,.0f}" for t in ticks])
+    ax.yaxis.set_minor_formatter(NullFormatter())
+
+
+def _arm_settings(
+    positions: list[float], measures: list[dict[str, dict[str, ArmMeasures]]], learner: str, arm: str,
+) -> tuple[np.ndarray, list[ArmMeasures]]:
+    """The positions of the settings in which ``learner`` ran ``arm``, and its measures there."""
+    at = [(p, ms[learner][arm]) for p, ms in zip(positions, measures, strict=True) if arm in ms.get(learner, {})]
+    return np.array([p for p, _ in at], dtype=np.float64), [m for _, m in at]
 
 
 def _map_image(ax, data: np.ndarray, extent: tuple, cmap, lo: float, hi: float, labels: tuple[str, str],

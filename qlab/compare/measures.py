@@ -63,6 +63,7 @@ class ArmMeasures:
     iqm_success: Estimate
     iqm_return: Estimate
     threshold_steps: np.ndarray  # per run, inf for a run that never reached the threshold (censored)
+    steps_interval: tuple[float, float] | None  # bootstrap interval of the median steps; None when censored
     budget: int
     profile: Band
     collapse_score: str  # the evaluation tag the collapse is measured on (see collapse_score)
@@ -173,6 +174,7 @@ def arm_measures(
     final_return = np.array([r.final["discounted_return"] for r in runs])
     scored = (success, final_success) if score == "success" else (ret, final_return)
     budget = max(r.budget for r in runs)
+    first = stats.steps_to_threshold(steps[keep], success[:, keep], threshold, budget)
     p_low, p_high = stats.performance_profile_ci(final_success, PROFILE_TAUS, CONFIDENCE, seed=seed)
     return ArmMeasures(
         arm=runs[0].arm,
@@ -186,7 +188,8 @@ def arm_measures(
         final_return=final_return,
         iqm_success=iqm_estimate(final_success, seed),
         iqm_return=iqm_estimate(final_return, seed),
-        threshold_steps=stats.steps_to_threshold(steps[keep], success[:, keep], threshold, budget),
+        threshold_steps=first,
+        steps_interval=stats.median_ci(first, CONFIDENCE, seed=seed),
         budget=budget,
         profile=Band(PROFILE_TAUS, stats.performance_profile(final_success, PROFILE_TAUS), p_low, p_high),
         collapse_score=score,

@@ -1,14 +1,17 @@
 """The top-level report of a study with several task settings, and the text every report page shares.
 
 Different task settings are different problems: each gets its own full report
-(:mod:`qlab.compare.report`), and the overview lists the settings with links to those reports
-and sets the arms side by side across them (IQM final success, median steps to threshold, and a
-figure of the steps against the setting when one numeric task key varies).
+(:mod:`qlab.compare.report`), and the overview sets the arms side by side across them: a figure
+and a table of the median steps to threshold against the setting, each shaping arm's speed-up
+over ``none`` and the IQM final success per setting; then it lists the settings with links to
+their reports.
 """
 
 from __future__ import annotations
 
+from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 
@@ -82,62 +85,130 @@ def folder_notes(study: Study) -> list[str]:
     return lines
 
 
-def figure_key(settings: list[TaskSetting]) -> str | None:
-    """The one varying task key when its values lie on a number line at distinct points; else None."""
-    keys = {k for s in settings for k in s.values}
-    if len(keys) != 1:
-        return None
-    key = keys.pop()
-    xs = [position(s.values[key]) for s in settings]
-    return key if None not in xs and len(set(xs)) == len(xs) else None
+def _far_end(value: Any) -> float | None:
+    """A number itself, a list of numbers its largest (the far end of a range); None for anything else."""
+    values = value if isinstance(value, tuple) else (value,)
+    if values and all(not isinstance(v, tuple) and position(v) is not None for v in values):
+        return float(max(values))
+    return None
 
 
-def overview_lines(
-    study: Study, settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], threshold: float,
-    out: Path,
-) -> list[str]:
-    """The top-level report of a study with several task settings: the settings, linked, and one table across them.
+def setting_axis(settings: list[TaskSetting]) -> tuple[list[float], list[str], str]:
+    """Where the figure across settings puts each setting: positions, tick labels and the axis label.
 
-    ``measures[i]`` are the measures of ``settings[i]``; the figure across settings is saved in ``out``.
+    The value of the one varying task key (a range at its far end) when those are distinct numbers;
+    otherwise the settings one step apart in their order, labelled by their values.
     """
     keys = sorted({k for s in settings for k in s.values})
-    shown = ", ".join(md_literal(k, code=True) for k in keys)
-    lines = [f"# Comparison report: {md_literal(study.name)}", "", CAUTION, "",
-             f"{len(study.runs)} runs read in {len(settings)} task settings: the runs differ in {shown}. Different "
-             "task settings are different problems, so each has its own full report and nothing is chosen across "
-             "them (a hyperparameter sweep, if any, is resolved within each setting).", "", "## Task settings", ""]
+    if len(keys) == 1:
+        ends = [_far_end(s.values[keys[0]]) for s in settings]
+        if None not in ends and len(set(ends)) == len(ends):
+            ranged = any(isinstance(s.values[keys[0]], tuple) for s in settings)
+            return ends, [f"{x:g}" for x in ends], f"{keys[0]}, far end of the range" if ranged else keys[0]
+    return [float(i) for i in range(len(settings))], [s.short_label for s in settings], "task setting (in order)"
+
+
+def median_steps_cell(m: ArmMeasures) -> str:
+    """Median steps with its bootstrap interval, e.g. ``750 [500, 1,000]`` (an end ``inf``: unbounded); or the bound."""
+    if m.steps_interval is None:
+        return median_steps(m)
+    low, high = m.steps_interval
+    return f"{median_steps(m)} [{low:,.0f}, {'inf' if np.isinf(high) else f'{high:,.0f}'}]"
+
+
+def _speed_up_cell(m: ArmMeasures) -> str:
+    return speed_up_cell(m.speed_up) if m.speed_up is not None else "no `none` arm"
+
+
+def _iqm_cell(m: ArmMeasures) -> str:
+    e = m.iqm_success
+    return f"{e.value:.2f} [{e.low:.2f}, {e.high:.2f}]"
+
+
+def across_table(
+    settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], cell: Callable[[ArmMeasures], str],
+    arms: Callable[[str], bool] = lambda arm: True,
+) -> list[str]:
+    """A table with a row per learner and arm (those ``arms`` keeps) and a column per task setting."""
+    pairs = sorted({(lr, a) for m in measures for lr, ms in m.items() for a in ms if arms(a)},
+                   key=lambda p: (p[0], arm_sort_key(p[1])))
+    lines = ["| learner | arm | " + " | ".join(md_literal(s.short_label) for s in settings) + " |",
+             "|---|---|" + "---|" * len(settings)]
+    for lr, arm in pairs:
+        cells = [cell(m[lr][arm]) if arm in m.get(lr, {}) else "not run" for m in measures]
+        lines.append(f"| {md_literal(lr)} | {md_literal(arm)} | " + " | ".join(cells) + " |")
+    return lines
+
+
+def steps_lines(
+    settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], threshold: float, out: Path,
+) -> list[str]:
+    """The section opening the overview: the figure of steps to threshold against the setting, and its table."""
+    positions, ticks, xlabel = setting_axis(settings)
+    figure = figures.settings_figure(positions, ticks, xlabel, measures, threshold)
+    return [f"## Steps to a success rate of {threshold:g} across task settings", "",
+            figures.save_figure(figure, out, SETTINGS_FIGURE), "",
+            f"Median environment steps to a success rate >= {threshold:g} against the task setting (x: {xlabel}), "
+            "one panel per learner, one line per shaping arm in the colours of every figure of these reports (arms "
+            "at one setting drawn slightly apart). Filled circles: the median over the reported runs, with a bar for "
+            "its 95% percentile bootstrap interval (runs resampled); a bar without a cap at the top runs into the "
+            "dashed budget line and has no upper end (in 2.5% or more of the resamples the median was censored). "
+            "Open triangles pointing up, at the "
+            "budget: half or more of the runs never reached the threshold, so the median lies beyond the budget (a "
+            "lower bound, no interval) and the line breaks there. The step axis is logarithmic when the values drawn "
+            f"span more than a factor of {figures.LOG_SPAN:g}. {CENSORING_RULE}", "",
+            *across_table(settings, measures, median_steps_cell), ""]
+
+
+def speed_up_lines(settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]]) -> list[str]:
+    """The table of each shaping arm's speed-up over ``none`` (same learner) per task setting."""
+    lines = ["## Speed-up over `none` across task settings", "",
+             "Median steps to the threshold of `none` divided by those of the arm, same learner and task setting: "
+             "above 1 the arm reaches the threshold sooner. 95% percentile bootstrap intervals, the runs of the two "
+             "arms resampled independently; a run that meets the threshold at step 0 counts as 1 step. Where a "
+             "median is censored the speed-up is only a bound, with no interval: `> x` when the median of `none` "
+             "lies beyond the budget (x = budget / median of the arm), `< x` when the arm's does (x = median of "
+             "`none` / budget), `undetermined` when both do. An interval end 0.00 or inf: in 2.5% or more of the "
+             "resamples a median was censored (resamples where both were count at both ends).", ""]
+    if not any(m.speed_up is not None for ms in measures for arms in ms.values() for m in arms.values()):
+        return [*lines, "No learner has both a `none` arm and a shaped arm in one task setting: nothing to compare.",
+                ""]
+    return [*lines, *across_table(settings, measures, _speed_up_cell, lambda arm: arm != "none"), ""]
+
+
+def settings_list_lines(settings: list[TaskSetting]) -> list[str]:
+    """The task settings, each linked to its own report, with run and failure counts."""
+    lines = ["## Task settings", ""]
     for s in settings:
         n_div, n_crash = failure_counts(s.study.runs)
         learners, arms = (", ".join(map(md_literal, names)) for names in (s.study.learners(), s.study.arms()))
         lines.append(f"- [{md_literal(s.folder)}]({s.folder}/{REPORT_MD}): {md_literal(s.label)}; "
                      f"{len(s.study.runs)} runs ({learners}; arms {arms}), {n_div} diverged, "
                      f"{n_crash} crashed, unfinished or damaged.")
-    lines += ["", "## Across task settings", "",
-              f"Per learner and arm, in each task setting (columns by {shown}): the interquartile mean (IQM) of the "
-              f"final success rate over the reported runs, and the median environment steps to a success rate >= "
-              f"{threshold:g}. {CENSORING_RULE} Failure scores: {FAILURE_RULE}. Intervals and the rest are in each "
-              "setting's report.", ""]
+    return [*lines, ""]
+
+
+def overview_lines(
+    study: Study, settings: list[TaskSetting], measures: list[dict[str, dict[str, ArmMeasures]]], threshold: float,
+    out: Path,
+) -> list[str]:
+    """The top-level report of a study with several task settings: the arms across the settings, and the settings.
+
+    ``measures[i]`` are the measures of ``settings[i]``; the figure across settings is saved in ``out``.
+    """
+    shown = ", ".join(md_literal(k, code=True) for k in sorted({k for s in settings for k in s.values}))
+    lines = [f"# Comparison report: {md_literal(study.name)}", "", CAUTION, "",
+             f"{len(study.runs)} runs read in {len(settings)} task settings: the runs differ in {shown}. Different "
+             "task settings are different problems, so each has its own full report (linked under Task settings "
+             "below) and nothing is chosen across them (a hyperparameter sweep, if any, is resolved within each "
+             f"setting). Columns of the tables below are the task settings. Failure scores: {FAILURE_RULE}.", ""]
     lines += seed_warning({f"{i}/{lr}": ms for i, m in enumerate(measures) for lr, ms in m.items()})
-    labels = [md_literal(s.short_label) for s in settings]
-    header = "| learner | arm | " + " | ".join(f"{x}: IQM final success | {x}: median steps" for x in labels) + " |"
-    lines += [header, "|---|---|" + "---|---|" * len(settings)]
-    pairs = sorted({(lr, a) for m in measures for lr, ms in m.items() for a in ms},
-                   key=lambda p: (p[0], arm_sort_key(p[1])))
-    for lr, arm in pairs:
-        cells = []
-        for m in measures:
-            am = m.get(lr, {}).get(arm)
-            cells += [f"{am.iqm_success.value:.2f}", median_steps(am)] if am else ["not run", "not run"]
-        lines.append(f"| {md_literal(lr)} | {md_literal(arm)} | " + " | ".join(cells) + " |")
-    lines.append("")
-    key = figure_key(settings)
-    if key is not None:
-        lines.append(figures.save_figure(figures.settings_figure(settings, measures, key, threshold), out,
-                                         SETTINGS_FIGURE))
-    else:
-        lines.append("No figure across settings: it needs exactly one varying task key whose values are numbers or "
-                     "lists of numbers (drawn at their midpoints) at distinct points.")
-    lines.append("")
+    lines += steps_lines(settings, measures, threshold, out)
+    lines += speed_up_lines(settings, measures)
+    lines += ["## Final success across task settings", "",
+              "Interquartile mean (IQM) of the final success rate over the reported runs, with 95% percentile "
+              "bootstrap intervals.", "", *across_table(settings, measures, _iqm_cell), ""]
+    lines += settings_list_lines(settings)
     if folder_notes(study):
         lines += [*folder_notes(study), ""]
     return lines

@@ -180,6 +180,39 @@ def loss_from_best(curves: np.ndarray, final: np.ndarray, floor: float | None = 
     return np.where(rise > 0, (best - f) / np.where(rise > 0, rise, 1.0), 0.0)
 
 
+def _outer_quantiles(low_side: np.ndarray, high_side: np.ndarray, confidence: float) -> tuple[float, float]:
+    """The percentile interval's ends rounded outwards to resampled values (numpy's ``lower`` and ``higher``
+    quantiles), so infinite resampled values need no interpolation."""
+    alpha = (1.0 - confidence) / 2.0
+    return (float(np.quantile(low_side, alpha, method="lower")),
+            float(np.quantile(high_side, 1.0 - alpha, method="higher")))
+
+
+def _resampled_medians(values: np.ndarray, n_resamples: int, rng: np.random.Generator) -> np.ndarray:
+    """Medians of ``n_resamples`` resamples of ``values`` with replacement, drawn in one call."""
+    return np.median(values[rng.integers(0, values.size, size=(n_resamples, values.size))], axis=1)
+
+
+def median_ci(
+    values: np.ndarray, confidence: float = 0.95, n_resamples: int = 2000, seed: int = 0,
+) -> tuple[float, float] | None:
+    """Percentile bootstrap interval of the median of ``values`` (``inf``: a censored run); None when censored.
+
+    A censored median (:func:`median_is_censored`) is only a bound and gets no interval. Otherwise
+    a resampled median may still be censored, so the upper end can be ``inf``; the ends are rounded
+    outwards to resampled medians (see :func:`median_ratio`).
+    """
+    v = _check_runs("values", values)
+    if np.any(np.isnan(v)):
+        raise ValueError("values must not hold NaN (inf for a censored run)")
+    require_within("confidence", confidence, 0.0, 1.0, open_low=True, open_high=True)
+    require_int("n_resamples", n_resamples, 1)
+    if median_is_censored(v):
+        return None
+    medians = _resampled_medians(v, int(n_resamples), np.random.default_rng(seed))
+    return _outer_quantiles(medians, medians, confidence)
+
+
 #: kinds of :class:`MedianRatio`
 ESTIMATE, LOWER_BOUND, UPPER_BOUND, UNDETERMINED = "estimate", "lower bound", "upper bound", "undetermined"
 
@@ -237,15 +270,13 @@ def median_ratio(
     if np.isinf(median_a) or np.isinf(median_b):
         return _ratio_bound(median_a, median_b, bound)
     rng = np.random.default_rng(seed)
-    resampled_a = np.median(x[rng.integers(0, x.size, size=(int(n_resamples), x.size))], axis=1)
-    resampled_b = np.median(y[rng.integers(0, y.size, size=(int(n_resamples), y.size))], axis=1)
+    resampled_a = _resampled_medians(x, int(n_resamples), rng)
+    resampled_b = _resampled_medians(y, int(n_resamples), rng)
     with np.errstate(invalid="ignore"):  # inf / inf: both resampled medians censored
         ratios = resampled_a / resampled_b
     unknown = np.isnan(ratios)
-    alpha = (1.0 - confidence) / 2.0
-    low = np.quantile(np.where(unknown, 0.0, ratios), alpha, method="lower")
-    high = np.quantile(np.where(unknown, np.inf, ratios), 1.0 - alpha, method="higher")
-    return MedianRatio(median_a / median_b, float(low), float(high), ESTIMATE)
+    low, high = _outer_quantiles(np.where(unknown, 0.0, ratios), np.where(unknown, np.inf, ratios), confidence)
+    return MedianRatio(median_a / median_b, low, high, ESTIMATE)
 
 
 def performance_profile(scores: np.ndarray, taus: np.ndarray) -> np.ndarray:
