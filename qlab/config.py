@@ -22,9 +22,11 @@ from typing import Any, Optional
 from hydra.core.config_store import ConfigStore
 from omegaconf import MISSING, DictConfig, OmegaConf
 
+from qlab.features import level_bins
 from qlab.learners import LEARNERS, learner_config_class
 from qlab.shaping import SHAPING_VARIANTS
-from qlab.tasks import TASKS, LearnerSizes
+from qlab.tasks import TASK_IDS, TASKS, LearnerSizes
+from qlab.tasks.registry import make_task
 from qlab.validation import require_name
 
 #: default of ``max_learner_mib``; also the limit for runs recorded before the setting existed
@@ -143,10 +145,25 @@ def folder_name(value: Any) -> str:
     return name or "_"
 
 
+def task_level_bins(task: DictConfig, bins: list[int]) -> list[int]:
+    """``bins`` with one cell per level on the observation dimensions a qlab task holds at discrete
+    levels (its pending commands, :meth:`~qlab.tasks.base.ControlTask.observation_levels`); other
+    gymnasium tasks keep ``bins``. The learner configs read their bins through it (``qlab_level_bins``)."""
+    params = to_container(task)
+    target = TASK_IDS.get(params.pop("id"))
+    if target is None:
+        return list(bins)
+    params.pop("learner_sizes", None)
+    return level_bins(list(bins), make_task(target, **params).observation_levels())
+
+
 def register_configs() -> ConfigStore:
-    """Register every schema with hydra's ConfigStore, and the ``qlab_folder`` resolver (idempotent)."""
+    """Register every schema with hydra's ConfigStore, and the ``qlab_folder`` and ``qlab_level_bins``
+    resolvers (idempotent)."""
     if not OmegaConf.has_resolver("qlab_folder"):
         OmegaConf.register_new_resolver("qlab_folder", folder_name)
+    if not OmegaConf.has_resolver("qlab_level_bins"):
+        OmegaConf.register_new_resolver("qlab_level_bins", task_level_bins)
     cs = ConfigStore.instance()
     cs.store(name="schema_run", node=RunConfig)
     for option, entry in TASKS.items():

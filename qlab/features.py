@@ -66,6 +66,23 @@ def per_dim(name: str, values: list[float], dim: int) -> np.ndarray:
     return arr
 
 
+def level_bins(bins: list[int], levels: list[int]) -> list[int]:
+    """``bins`` with one cell, tile or RBF centre per level on the dimensions that take few values.
+
+    ``levels[k]`` is how many evenly spaced values observation dimension ``k`` takes between its
+    bounds (0: continuous; e.g. a pending command of discrete actions takes ``n_levels``). One
+    value of ``bins`` for every dimension becomes that value on the continuous dimensions and
+    ``levels[k]`` on the others; a per-dimension list, or no dimension with levels, stays as given.
+    With ``n`` cells across ``n`` levels, level ``i`` lies ``i * n / (n - 1)`` cells from the lower
+    bound: in cell ``i`` (the last one on the upper edge), and consecutive levels lie more than a
+    tile apart, so each level has a tile of its own in every tiling; RBF centres fall on the levels.
+    """
+    bins = require_int_list("bins", bins, 1, BINS_NOTE)
+    if len(bins) > 1 or not any(levels):
+        return bins
+    return [int(n) if n else bins[0] for n in levels]
+
+
 def observation_dim(space: spaces.Space) -> int:
     """Length of a flat ``Box`` observation, else ``ValueError``."""
     if not isinstance(space, spaces.Box) or len(space.shape) != 1:

@@ -3,6 +3,12 @@
 * ``none``: the task's own reward, unchanged.
 * ``potential``: F = gamma * Phi(s') - Phi(s), with Phi(s') = 0 when the step terminates and
   never at a truncation. Leaves the optimal policy unchanged (Ng, Harada & Russell 1999).
+* ``potential_ahead``: the same with Phi taken where the pending commands of a task with a dead
+  time carry the plant, predicted noise-free from the observation
+  (:meth:`qlab.tasks.base.ControlTask.potential_ahead`): a command's effect is credited when it is
+  given, not when it acts. Still potential-based (a function of the observation), so it keeps the
+  optimal policy too; without dead time it equals ``potential``. Offered by every task with a
+  potential; refused by a Kiln that hides its pending commands.
 * ``progress``: F = k * max(0, d(s) - d(s')) for the task's goal distance d: a naive bonus
   for getting closer with no charge for moving away. Not potential-based: it can change the
   optimal policy, which the shaping audit measures.
@@ -20,7 +26,7 @@ import numpy as np
 
 from qlab.validation import require_choice, require_gamma
 
-SHAPING_VARIANTS = ("none", "potential", "progress")
+SHAPING_VARIANTS = ("none", "potential", "potential_ahead", "progress")
 
 
 def check_variant(variant: str, allowed: tuple[str, ...] = SHAPING_VARIANTS) -> str:
@@ -39,15 +45,16 @@ def shaping_bonus(
 ) -> np.ndarray:
     """Shaping reward F for a batch of transitions, shape ``(N,)``.
 
-    ``task`` supplies ``potential(obs)`` and ``goal_distance(obs)`` (both batched).
+    ``task`` supplies ``potential(obs)``, ``potential_ahead(obs)`` and ``goal_distance(obs)`` (all batched).
     """
     check_variant(variant)
     n = np.asarray(terminated).shape[0]
     if variant == "none":
         return np.zeros(n)
-    if variant == "potential":
-        phi_next = np.where(terminated, 0.0, task.potential(next_obs))
-        return gamma * phi_next - task.potential(obs)
+    if variant in ("potential", "potential_ahead"):
+        phi = task.potential if variant == "potential" else task.potential_ahead
+        phi_next = np.where(terminated, 0.0, phi(next_obs))
+        return gamma * phi_next - phi(obs)
     return progress_scale * np.maximum(0.0, task.goal_distance(obs) - task.goal_distance(next_obs))
 
 

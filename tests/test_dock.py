@@ -271,3 +271,40 @@ def test_start_states_are_at_rest_within_the_start_range():
     assert np.all(start[:, 1] == 0.0)
     assert np.all((-start[:, 0] >= 80.0) & (-start[:, 0] <= 120.0))
     assert np.ptp(start[:, 0]) > 35.0  # spread over the range, not a single point
+
+
+# --- fixed channel ------------------------------------------------------------------------------
+
+
+def test_default_channel_end_follows_the_farthest_start():
+    # Today's rule kept: x_end = -(start_distance_m[1] + channel_margin_m) = -(25 + 30) = -55 m and -(50 + 30) = -80 m.
+    assert Dock(start_distance_m=(15.0, 25.0)).channel_end_m == -55.0
+    assert Dock(start_distance_m=(40.0, 50.0)).channel_end_m == -80.0
+
+
+def test_fixed_channel_end_and_observation_box_do_not_depend_on_the_start_range():
+    tasks = [Dock(start_distance_m=r, channel_length_m=55.0, dead_time_steps=1) for r in [(5.0, 10.0), (15.0, 25.0),
+                                                                                           (40.0, 55.0)]]
+    assert {t.channel_end_m for t in tasks} == {-55.0}
+    for t in tasks[1:]:
+        np.testing.assert_array_equal(t.observation_space.low, tasks[0].observation_space.low)
+        np.testing.assert_array_equal(t.observation_space.high, tasks[0].observation_space.high)
+    assert tasks[0].observation_space.low[0] == -55.0
+    # with the default rule the box of the 15-25 m start is the same 55 m channel: the fixed one reproduces it
+    np.testing.assert_array_equal(Dock(start_distance_m=(15.0, 25.0)).observation_space.low,
+                                  Dock(start_distance_m=(15.0, 25.0), channel_length_m=55.0).observation_space.low)
+
+
+def test_start_beyond_the_fixed_channel_is_refused():
+    with pytest.raises(ValueError, match=r"start_distance_m=\[40.0, 60.0\] must lie within channel_length_m=55.0"):
+        Dock(start_distance_m=(40.0, 60.0), channel_length_m=55.0)
+    with pytest.raises(ValueError, match="channel_length_m"):
+        Dock(channel_length_m=0.0)
+
+
+def test_leaving_the_fixed_channel_fails_at_its_end():
+    # Backing at 1 m/s from 54.9 m out: past x_end = -55 m within the step, clamped there and failed.
+    task = Dock(start_distance_m=(15.0, 25.0), channel_length_m=55.0)
+    out = task.batch_step(np.array([[-54.9, -1.0]]), np.zeros((1, 1)), np.random.default_rng(0))
+    assert out.terminated[0] and not out.success[0]
+    assert out.next_state[0, 0] == -55.0

@@ -18,8 +18,10 @@ from qlab.features import (
     QuadraticFeatures,
     TileCoder,
     build_features,
+    level_bins,
     resolve_bounds,
 )
+from qlab.tasks.dock import Dock
 
 LOW, HIGH = np.array([-2.0, 0.0]), np.array([2.0, 10.0])
 BINS = [4, 5]  # tile widths 1.0 and 2.0
@@ -209,3 +211,31 @@ def test_bins_and_bounds_must_match_the_observation_dimension():
         build_features(FeatureConfig(features="grid", low=[0.0, 0.0, 0.0]), space)
     with pytest.raises(ValueError, match="high must exceed low"):
         build_features(FeatureConfig(features="grid", low=[5.0]), space)
+
+
+# --- one cell per level ---------------------------------------------------------------------------
+
+
+def test_level_bins_give_each_level_dimension_its_level_count():
+    assert level_bins([40], [0, 0, 5, 5]) == [40, 40, 5, 5]
+    assert level_bins([30, 30, 3, 3], [0, 0, 5, 5]) == [30, 30, 3, 3]  # a per-dimension list is taken as given
+    assert level_bins([40], [0, 0]) == [40]  # nothing at levels: unchanged
+
+
+@pytest.mark.parametrize("n_levels", [3, 5, 7, 9, 21])
+def test_every_pending_level_has_a_cell_and_a_tile_of_its_own(n_levels):
+    # The levels of 7, 9 and 21 thrusts are not exact in float32 (e.g. -800 + 1600/6): their own cells must not
+    # hang on rounding. Dock with 2 pending thrusts; each row holds one level in both pending dimensions.
+    task = Dock(dead_time_steps=2, n_levels=n_levels)
+    levels = task.observation_levels()
+    assert levels == [0, 0, n_levels, n_levels]
+    state = np.zeros((n_levels, 4))
+    state[:, 0] = -50.0
+    state[:, 2] = state[:, 3] = task.control_levels[:, 0]
+    obs = task.observe(state)
+    space = task.observation_space
+    grid = GridBins(space.low, space.high, level_bins([40], levels))
+    assert np.unique(grid.index(obs)).size == n_levels
+    tiles = TileCoder(space.low, space.high, level_bins([8], levels), n_tilings=8)
+    active = tiles.active(obs)
+    assert all(np.unique(active[:, j]).size == n_levels for j in range(8))

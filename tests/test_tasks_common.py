@@ -17,7 +17,9 @@ from qlab.tasks import TASK_IDS, TaskBatch
 PARAMS = {
     "qlab/Dock-v0": st.fixed_dictionaries(
         {"mass_kg": st.floats(500.0, 5000.0), "velocity_noise_m_s": st.sampled_from([0.0, 0.05]),
-         "start_distance_m": st.sampled_from([(5.0, 10.0), (20.0, 40.0)])}
+         "start_distance_m": st.sampled_from([(5.0, 10.0), (20.0, 40.0)]),
+         "channel_length_m": st.sampled_from([None, 45.0]), "dead_time_steps": st.integers(0, 3),
+         "action_kind": st.sampled_from(["discrete", "continuous"])}
     ),
     "qlab/Kiln-v0": st.fixed_dictionaries(
         {"dead_time_steps": st.integers(0, 6), "observe_pending": st.booleans(),
@@ -25,15 +27,24 @@ PARAMS = {
     ),
     "qlab/Crane-v0": st.fixed_dictionaries(
         {"mass_load_kg": st.floats(200.0, 2000.0), "rope_length_m": st.floats(2.0, 8.0),
-         "lock_trolley": st.booleans(), "force_noise_N": st.sampled_from([0.0, 100.0])}
+         "lock_trolley": st.booleans(), "force_noise_N": st.sampled_from([0.0, 100.0]),
+         "dead_time_steps": st.integers(0, 3)}
     ),
     "qlab/LinearQuadratic-v0": st.fixed_dictionaries(
         {"dt_s": st.floats(0.05, 0.2), "action_kind": st.sampled_from(["continuous", "discrete"]),
          "noise_cov": st.sampled_from([None, [[1e-3, 0.0], [0.0, 1e-3]]])}
     ),
 }
-SHAPED = [(task_id, variant) for task_id in TASK_IDS for variant in ("none", "potential", "progress")
+SHAPED = [(task_id, variant) for task_id in TASK_IDS for variant in ("none", "potential", "potential_ahead", "progress")
           if task_id != "qlab/LinearQuadratic-v0" or variant == "none"]
+#: the new settings of Dock and Crane, each checked by gymnasium's checker under every variant
+DEAD_TIME_SETTINGS = [
+    ("qlab/Dock-v0", {"dead_time_steps": 2}),
+    ("qlab/Dock-v0", {"dead_time_steps": 3, "action_kind": "continuous", "velocity_noise_m_s": 0.05}),
+    ("qlab/Dock-v0", {"channel_length_m": 55.0, "start_distance_m": (15.0, 25.0), "dead_time_steps": 1}),
+    ("qlab/Crane-v0", {"dead_time_steps": 2, "force_noise_N": 100.0}),
+    ("qlab/Crane-v0", {"dead_time_steps": 1, "action_kind": "continuous"}),
+]
 
 
 def rollout(env: gym.Env, seed: int, actions: list[int]) -> list[tuple]:
@@ -51,11 +62,13 @@ def rollout(env: gym.Env, seed: int, actions: list[int]) -> list[tuple]:
     return trace
 
 
-@pytest.mark.parametrize(("task_id", "variant"), SHAPED)
-def test_gymnasium_env_checker_passes(task_id, variant):
+@pytest.mark.parametrize(("task_id", "variant", "params"),
+                         [(t, v, {}) for t, v in SHAPED]
+                         + [(t, v, p) for t, p in DEAD_TIME_SETTINGS for v in ("none", "potential", "potential_ahead")])
+def test_gymnasium_env_checker_passes(task_id, variant, params):
     # gymnasium.utils.env_checker.check_env: gymnasium's own API conformance checks
-    env = gym.make(task_id, shaping=variant, gamma=0.99).unwrapped if variant == "none" else \
-        gym.make(task_id, shaping=variant, gamma=0.99)
+    env = gym.make(task_id, shaping=variant, gamma=0.99, **params).unwrapped if variant == "none" else \
+        gym.make(task_id, shaping=variant, gamma=0.99, **params)
     with warnings.catch_warnings():
         warnings.simplefilter("error")
         warnings.filterwarnings("ignore", message=".*is different from the unwrapped version.*")
@@ -128,13 +141,15 @@ def test_batch_copies_repeat_seeded_single_envs(task_id, data, seed, n):
         which = batch.done & (rng.random(n) < 0.5)  # some ended copies start a new episode
 
 
-def shaped_episode(task_id: str, gamma: float, seed: int, policy_seed: int, **params) -> tuple:
-    """Shaped and base discounted returns of one episode, with Phi at its first and last observations."""
-    env = gym.make(task_id, shaping="potential", gamma=gamma, **params)
+def shaped_episode(task_id: str, gamma: float, seed: int, policy_seed: int, variant: str = "potential",
+                   **params) -> tuple:
+    """Shaped and base discounted returns of one episode, with the variant's Phi at its first and last observations."""
+    env = gym.make(task_id, shaping=variant, gamma=gamma, **params)
     task = env.unwrapped
+    phi = task.potential if variant == "potential" else task.potential_ahead
     rng = np.random.default_rng(policy_seed)
     obs, _ = env.reset(seed=seed)
-    phi0 = task.potential(obs[None])[0]
+    phi0 = phi(obs[None])[0]
     shaped, base = [], []
     done = False
     while not done:
@@ -143,11 +158,15 @@ def shaped_episode(task_id: str, gamma: float, seed: int, policy_seed: int, **pa
         base.append(info["base_reward"])
         done = terminated or truncated
     return (discounted_return(np.array(shaped), gamma), discounted_return(np.array(base), gamma), phi0,
-            task.potential(obs[None])[0], len(shaped), terminated)
+            phi(obs[None])[0], len(shaped), terminated)
 
 
-@pytest.mark.parametrize("task_id", ["qlab/Dock-v0", "qlab/Crane-v0", "qlab/Kiln-v0"])
-def test_potential_shaping_telescopes(task_id):
+@pytest.mark.parametrize(("task_id", "variant", "dead_time_steps"), [
+    ("qlab/Dock-v0", "potential", 0), ("qlab/Crane-v0", "potential", 0), ("qlab/Kiln-v0", "potential", 4),
+    ("qlab/Dock-v0", "potential", 2), ("qlab/Dock-v0", "potential_ahead", 2), ("qlab/Crane-v0", "potential_ahead", 2),
+    ("qlab/Kiln-v0", "potential_ahead", 4),
+])
+def test_potential_shaping_telescopes(task_id, variant, dead_time_steps):
     # Ng, Harada & Russell (1999): sum_t gamma^t F_t = gamma^T Phi(s_T) - Phi(s_0), Phi(s_T) = 0 if terminal
     gamma = 0.97
     seen = set()
@@ -155,7 +174,8 @@ def test_potential_shaping_telescopes(task_id):
         params = {"max_steps": 30} if task_id != "qlab/Kiln-v0" else {}
         if task_id == "qlab/Dock-v0":
             params["start_distance_m"] = (3.0, 6.0)
-        g_shaped, g_base, phi0, phi_end, steps, terminated = shaped_episode(task_id, gamma, seed, seed, **params)
+        g_shaped, g_base, phi0, phi_end, steps, terminated = shaped_episode(
+            task_id, gamma, seed, seed, variant, dead_time_steps=dead_time_steps, **params)
         tail = 0.0 if terminated else gamma**steps * phi_end
         assert g_shaped == pytest.approx(g_base - phi0 + tail, abs=1e-9)
         seen.add(bool(terminated))
@@ -164,8 +184,8 @@ def test_potential_shaping_telescopes(task_id):
 
 def test_info_base_reward_is_the_tasks_own_under_every_variant():
     rewards = {}
-    for variant in ("none", "potential", "progress"):
-        env = gym.make("qlab/Dock-v0", shaping=variant, start_distance_m=(3.0, 6.0))
+    for variant in ("none", "potential", "potential_ahead", "progress"):
+        env = gym.make("qlab/Dock-v0", shaping=variant, start_distance_m=(3.0, 6.0), dead_time_steps=1)
         env.reset(seed=5)
         rewards[variant] = [env.step(4)[4]["base_reward"] for _ in range(5)]
-    assert rewards["none"] == rewards["potential"] == rewards["progress"]
+    assert rewards["none"] == rewards["potential"] == rewards["potential_ahead"] == rewards["progress"]

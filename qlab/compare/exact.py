@@ -36,10 +36,10 @@ LQ_ID = "qlab/LinearQuadratic-v0"
 
 
 def has_grid_reference(run: Run) -> bool:
-    """Dock with discrete thrust and no process noise: the grid model gives an exact Q*."""
+    """Dock with discrete thrust, no process noise and no dead time: the grid model gives an exact Q*."""
     f = run.flat
     return (run.task_id == DOCK_ID and f.get("task.action_kind", "discrete") == "discrete"
-            and float(f.get("task.velocity_noise_m_s", 0.0)) == 0.0)
+            and float(f.get("task.velocity_noise_m_s", 0.0)) == 0.0 and int(f.get("task.dead_time_steps", 0)) == 0)
 
 
 def restore(run: Run) -> tuple[Learner, Any]:
@@ -252,6 +252,6 @@ def diagnostics_lines(study: Study, selections: dict[str, Selection], grid: int,
         lines += ["### Linear-quadratic: learned Q against the closed form", "", *lq_lines(selections, out)]
     others = sorted({md_literal(r.task_id) for r in runs if not has_grid_reference(r) and r.task_id != LQ_ID})
     if others:
-        lines += [f"No exact answer for {', '.join(others)} (or Dock with noise or continuous thrust): "
+        lines += [f"No exact answer for {', '.join(others)} (or Dock with noise, continuous thrust or dead time): "
                   "diagnostics skipped for those runs.", ""]
     return lines + audit_lines(study, grid)

@@ -25,6 +25,7 @@ ARM_COLOURS = {
     "none": "#3b3b3b",
     START_AT_POTENTIAL_ARM: "#009e73",
     "potential": "#0072b2",
+    "potential_ahead": "#56b4e9",
     "progress": "#d55e00",
 }
 _OTHER_COLOURS = ("#cc79a7", "#e69f00", "#56b4e9", "#a08c00")

@@ -58,7 +58,7 @@ LEARNER_SIZES_PREFIX = "task.learner_sizes."
 #: arm of a run trained on the task's own reward with Q started at the potential (Wiewiora 2003)
 START_AT_POTENTIAL_ARM = "none + Q started at Phi"
 #: order of the known arms in tables and legends; other arms follow alphabetically
-ARM_ORDER = ("none", START_AT_POTENTIAL_ARM, "potential", "progress")
+ARM_ORDER = ("none", START_AT_POTENTIAL_ARM, "potential", "potential_ahead", "progress")
 
 
 def flatten(tree: dict[str, Any]) -> dict[str, Any]:

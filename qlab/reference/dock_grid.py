@@ -50,7 +50,8 @@ class DockGrid:
     nodes, so ``n_states = n_grid + 2``. Actions are the task's discrete thrust levels.
 
     ``cache``: ``False`` (build in memory), ``True`` (the default cache folder) or a folder path.
-    The model needs a discrete, noise-free task (``velocity_noise_m_s = 0``).
+    The model needs a discrete, noise-free task without dead time (``velocity_noise_m_s = 0``,
+    ``dead_time_steps = 0``: the grid has no axes for pending commands).
     """
 
     def __init__(self, task: Dock, n_position: int, n_velocity: int, cache: bool | str | os.PathLike = False):
@@ -60,6 +61,8 @@ class DockGrid:
             raise ValueError("task must use action_kind='discrete' for a grid model")
         if task.velocity_noise_m_s != 0:
             raise ValueError("DockGrid models the noise-free task: velocity_noise_m_s must be 0")
+        if task.dead_time_steps:
+            raise ValueError("DockGrid models the task without dead time: dead_time_steps must be 0")
         self.task = task
         self.n_position = require_int("n_position", n_position, 2)
         self.n_velocity = require_int("n_velocity", n_velocity, 2)
@@ -133,7 +136,8 @@ class DockGrid:
         """Rewards ``(n_states, A)`` of a shaping variant; zero at the absorbing nodes.
 
         ``none``: the task's own reward. ``potential``: R + gamma * E[Phi(next node)] - Phi(node)
-        with Phi = 0 at the absorbing nodes, so the grid MDP keeps Q*_shaped = Q* - Phi exactly.
+        with Phi = 0 at the absorbing nodes, so the grid MDP keeps Q*_shaped = Q* - Phi exactly;
+        ``potential_ahead`` is the same (nothing is pending without dead time).
         ``progress``: R + k * max(0, d(s) - d(s')) for the continuous next state s', the bonus the
         task pays (``k = progress_scale``, default the task's ``default_progress_scale``).
         """

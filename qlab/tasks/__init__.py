@@ -18,12 +18,14 @@ from qlab.tasks.batch import BatchTransition, TaskBatch
 class LearnerSizes:
     """Learner sizes that fit a task: a table or feature map of these sizes stays small in memory.
 
-    The learner configs read them (``bins: ${task.learner_sizes.table_bins}``), so every task
-    states defaults that fit it and a command line can still override them.
+    The learner configs read them (``bins: ${qlab_level_bins:${task},${task.learner_sizes.table_bins}}``),
+    so every task states defaults that fit it and a command line can still override them. One value
+    is for every continuous dimension; dimensions held at discrete levels (pending commands) get one
+    cell per level (:func:`qlab.features.level_bins`).
     """
 
-    table_bins: list[int] = field(default_factory=lambda: [40])  # grid cells per dimension (tabular)
-    feature_bins: list[int] = field(default_factory=lambda: [8])  # tiles or RBF centres per dimension (linear, LSTD-Q)
+    table_bins: list[int] = field(default_factory=lambda: [40])  # grid cells per continuous dimension (tabular)
+    feature_bins: list[int] = field(default_factory=lambda: [8])  # tiles or RBF centres per continuous dimension
     n_tilings: int = 8  # tilings of the tile coder
 
 
@@ -41,7 +43,8 @@ TASKS: dict[str, TaskEntry] = {
     entry.option: entry
     for entry in (
         TaskEntry("dock", "qlab/Dock-v0", "qlab.tasks.dock:Dock"),
-        # 4 + dead_time_steps observation dimensions: 6 cells each keeps the table near 1e6 cells
+        # 4 + dead_time_steps observation dimensions: 6 cells on the 4 continuous ones and one per burner level (5) on
+        # each pending command keep the default table (6^4 * 5^4) under 1e6 cells
         TaskEntry("kiln", "qlab/Kiln-v0", "qlab.tasks.kiln:Kiln", LearnerSizes([6], [4], 4)),
         TaskEntry("crane", "qlab/Crane-v0", "qlab.tasks.crane:Crane", LearnerSizes([20], [8], 8)),
         TaskEntry("linear_quadratic", "qlab/LinearQuadratic-v0", "qlab.tasks.linear_quadratic:LinearQuadratic"),

@@ -8,6 +8,10 @@ Every task subclasses :class:`ControlTask` and writes its dynamics a single time
 Actions reach the physics as a physical control array of shape ``(N, control_dim)``: a
 discrete action index is mapped to one of ``n_levels`` evenly spaced control levels, a
 continuous action is clipped to the control bounds (unless the bounds are switched off).
+
+A task with a dead time keeps the commands given but not yet acting in its state, oldest first
+(:meth:`ControlTask._delay`), and shows them as the last columns of its observation, so the task
+stays Markov; :meth:`ControlTask.potential_ahead` predicts where they take the plant.
 """
 
 from __future__ import annotations
@@ -34,6 +38,23 @@ class StepOutcome:
     success: np.ndarray  # (N,) bool
 
 
+class MeanDraws:
+    """Stands in for a numpy ``Generator`` in a task's physics: every draw is its mean, so noise is off.
+
+    Provides the draws qlab's tasks may use, each with a ``size`` of ``(N, ...)`` as for
+    :class:`qlab.tasks.batch.CopyStreams`: ``uniform``, ``standard_normal`` and ``normal``.
+    """
+
+    def uniform(self, low: Any = 0.0, high: Any = 1.0, size: Any = None) -> np.ndarray:
+        return np.full(size, 0.5 * (np.asarray(low, dtype=np.float64) + high))
+
+    def standard_normal(self, size: Any = None, dtype: Any = np.float64) -> np.ndarray:
+        return np.zeros(size, dtype=dtype)
+
+    def normal(self, loc: Any = 0.0, scale: Any = 1.0, size: Any = None) -> np.ndarray:
+        return np.full(size, np.asarray(loc, dtype=np.float64))
+
+
 class ControlTask(gym.Env):
     """Base class: subclasses define the physics, the observation and the shaping signals.
 
@@ -44,7 +65,7 @@ class ControlTask(gym.Env):
 
     metadata: ClassVar[dict[str, Any]] = {"render_modes": []}
     #: Shaping variants that make sense for this task (see :mod:`qlab.shaping`).
-    shaping_variants: ClassVar[tuple[str, ...]] = ("none", "potential", "progress")
+    shaping_variants: ClassVar[tuple[str, ...]] = ("none", "potential", "potential_ahead", "progress")
     #: Default weight k of the ``progress`` bonus, per unit of goal distance.
     default_progress_scale: ClassVar[float] = 0.01
 
@@ -52,6 +73,8 @@ class ControlTask(gym.Env):
     control_low: np.ndarray
     control_high: np.ndarray
     max_steps: int
+    #: steps between giving a command and its acting (0: at once); see :meth:`_setup_dead_time`
+    dead_time_steps: int = 0
 
     # --- set-up helpers -------------------------------------------------------------------
 
@@ -82,6 +105,21 @@ class ControlTask(gym.Env):
             high = self.control_high if clip else np.full_like(self.control_high, np.inf)
             self.action_space = spaces.Box(low.astype(np.float32), high.astype(np.float32), dtype=np.float32)
 
+    def _setup_dead_time(self, dead_time_steps: int) -> None:
+        """Validate the dead time (after :meth:`_setup_actions`): at reset every pending command is 0.
+
+        With discrete actions the zero control must be one of the levels (an odd ``n_levels`` on a
+        symmetric range), so the pending commands only ever hold levels.
+        """
+        self.dead_time_steps = require_int("dead_time_steps", dead_time_steps, 0)
+        if self.dead_time_steps and self.control_levels is not None:
+            span = np.max(self.control_high - self.control_low)
+            if not np.any(np.all(np.abs(self.control_levels) <= 1e-12 * span, axis=1)):
+                raise ValueError(
+                    f"dead_time_steps={self.dead_time_steps} starts the pending commands at control 0, which must be "
+                    f"one of the {len(self.control_levels)} levels: choose an odd n_levels"
+                )
+
     def _setup_time_cap(self, max_steps: int) -> None:
         self.max_steps = require_int("max_steps", max_steps, 1)
         self._state: np.ndarray | None = None
@@ -110,6 +148,58 @@ class ControlTask(gym.Env):
         raise NotImplementedError
 
     # --- shared machinery -----------------------------------------------------------------
+
+    @property
+    def pending_in_observation(self) -> int:
+        """How many pending commands the observation shows as its last columns: all of them."""
+        return self.dead_time_steps
+
+    def observation_levels(self) -> list[int]:
+        """Distinct values of each observation dimension: ``n_levels`` for a pending command of
+        discrete actions, 0 for a continuous dimension. Learners' grids and tiles read it (one cell
+        per level, :func:`qlab.features.level_bins`)."""
+        dim = int(self.observation_space.shape[0])
+        if self.control_levels is None:
+            return [0] * dim
+        shown = self.pending_in_observation * self.control_low.size
+        return [0] * (dim - shown) + [len(self.control_levels)] * shown
+
+    def _delay(self, pending: np.ndarray, command: np.ndarray) -> tuple[np.ndarray, np.ndarray]:
+        """The control acting this step and the pending commands after it (a first-in first-out queue).
+
+        ``pending``: ``(N, dead_time_steps * control_dim)``, oldest first; ``command``: ``(N, control_dim)``.
+        Without dead time the command acts at once and nothing is pending.
+        """
+        if not self.dead_time_steps:
+            return command, pending
+        k = self.control_low.size
+        return pending[:, :k], np.concatenate([pending[:, k:], command], axis=1)
+
+    def state_from_observation(self, obs: np.ndarray) -> np.ndarray:
+        """The state behind observations that show the pending commands, ``(N, state_dim)`` float64."""
+        return np.array(obs, dtype=np.float64)
+
+    def potential_ahead(self, obs: np.ndarray) -> np.ndarray:
+        """Phi of the plant after the pending commands have acted, predicted noise-free, shape ``(N,)``.
+
+        The state behind ``obs`` is stepped once per pending command through :meth:`batch_step` with
+        every random draw at its mean (:class:`MeanDraws`); the commands given meanwhile act only
+        later. A copy the prediction sees end stays where it ended, with Phi = 0 if it failed (the
+        potential of a terminal state). With no pending command shown this is :meth:`potential`.
+        """
+        steps = self.pending_in_observation
+        if not steps:
+            return self.potential(obs)
+        state = self.state_from_observation(obs)
+        later = np.zeros((state.shape[0], self.control_low.size))
+        ended = np.zeros(state.shape[0], dtype=bool)
+        failed = np.zeros(state.shape[0], dtype=bool)
+        for _ in range(steps):
+            out = self.batch_step(state, later, MeanDraws())
+            state = np.where(ended[:, None], state, out.next_state)
+            failed |= ~ended & out.terminated & ~out.success
+            ended |= out.terminated
+        return np.where(failed, 0.0, self.potential(self.observe(state)))
 
     def controls(self, action: np.ndarray) -> np.ndarray:
         """Map a batch of actions (indices or continuous vectors) to physical controls (N, control_dim)."""

@@ -36,11 +36,18 @@ class Crane(ControlTask):
     ``substeps`` classical Runge-Kutta (RK4) sub-steps. With ``lock_trolley=True`` the trolley is
     held still (x'' = 0, x' = 0, the force has no effect) and the load is a simple pendulum.
 
-    **State** (float64): trolley position x (m), trolley velocity x' (m/s), sway angle theta (rad,
-    kept wrapped to [-pi, pi)), sway rate theta' (rad/s).
+    **Dead time**: the force commanded at step ``k`` acts during step ``k + dead_time_steps``
+    (a pure delay; the process noise is added when it acts). The commands given but not yet acting
+    wait in the state, oldest first; at reset they are all zero force. ``dead_time_steps = 0``
+    (default): the force acts at once.
 
-    **Observation** ``Box(4,)`` float32: the state, with x clipped to the rail ``[0, rail_length_m]``
-    and the two rates clipped to ``+-speed_bound_m_s`` and ``+-sway_rate_bound_rad_s``. The bounds
+    **State** (float64): trolley position x (m), trolley velocity x' (m/s), sway angle theta (rad,
+    kept wrapped to [-pi, pi)), sway rate theta' (rad/s), then the ``dead_time_steps`` pending
+    forces (N, oldest first).
+
+    **Observation** ``Box(4 + dead_time_steps,)`` float32: the state (Markov), with x clipped to the
+    rail ``[0, rail_length_m]``, the two rates clipped to ``+-speed_bound_m_s`` and
+    ``+-sway_rate_bound_rad_s`` and the pending forces within ``+-max_force_N``. The bounds
     come from an energy budget ``E_b = max_force_N * rail_length_m + 2 m g L`` (J): the work of the
     full force over the whole rail plus the largest swing energy. Kinetic energy ``E`` allows at
     most ``|x'| <= sqrt(2 E / M)`` and ``|theta'| <= sqrt(2 E (M + m) / (m M L^2))`` (from the
@@ -51,11 +58,13 @@ class Crane(ControlTask):
     ``-max_force_N`` to ``+max_force_N`` (5 levels: -2, -1, 0, 1, 2 kN by default).
     ``"continuous"``: a force in N, clipped to ``+-max_force_N``. Optional process noise adds a
     Gaussian force with standard deviation ``force_noise_N``, drawn per copy and held for the step.
+    With a dead time and discrete actions ``n_levels`` must be odd, so zero force is a level.
 
     **Reward**: 1 on the step that ends in success, else 0.
 
     **Start state**: trolley at rest at a position drawn uniformly from ``start_position_m``; sway
-    angle uniform in ``start_sway_rad``; sway rate drawn uniformly from ``start_sway_rate_rad_s``.
+    angle uniform in ``start_sway_rad``; sway rate drawn uniformly from ``start_sway_rate_rad_s``;
+    no force pending.
 
     **Episode end**: *success* (terminated, reward 1) when, at the end of a control step,
     ``|x - target_m| <= position_tol_m``, ``|x'| <= speed_tol_m_s``, ``|theta| <= sway_tol_rad`` and
@@ -73,7 +82,9 @@ class Crane(ControlTask):
     locked). Potential ``Phi = exp(-d / potential_scale_m)`` in [0, 1], equal to 1 at the goal
     state. It is meant to be value-like: with the defaults a start 10 m from the target has
     Phi = exp(-1/3) ~ 0.72 ~ 0.99**33, close to the discounted value (gamma = 0.99) of the
-    30-odd control steps (about 6 s) a hand-tuned linear-quadratic controller needs.
+    30-odd control steps (about 6 s) a hand-tuned linear-quadratic controller needs. Both read
+    the first four observation dimensions only; the ``potential_ahead`` variant takes Phi where
+    the pending forces carry the crane (:meth:`~qlab.tasks.base.ControlTask.potential_ahead`).
 
     **Parameters** (defaults invented, plausible for a small workshop gantry)
 
@@ -101,6 +112,7 @@ class Crane(ControlTask):
     lock_trolley              False    hold the trolley still (pendulum alone, for testing)
     force_noise_N             0        standard deviation of the process-noise force (N)
     potential_scale_m         30       length scale of the potential Phi (m)
+    dead_time_steps           0        control steps before a commanded force acts
     ========================  =======  ==========================================================
     """
 
@@ -133,6 +145,7 @@ class Crane(ControlTask):
         lock_trolley: bool = False,
         force_noise_N: float = 0.0,
         potential_scale_m: float = 30.0,
+        dead_time_steps: int = 0,
     ):
         self.mass_trolley_kg = require_positive("mass_trolley_kg", mass_trolley_kg)
         self.mass_load_kg = require_positive("mass_load_kg", mass_load_kg)
@@ -165,14 +178,16 @@ class Crane(ControlTask):
 
         M, m, L, g = self.mass_trolley_kg, self.mass_load_kg, self.rope_length_m, self.gravity_m_s2
         self._setup_actions(-self.max_force_N, self.max_force_N, action_kind, n_levels)
+        self._setup_dead_time(dead_time_steps)
         self._setup_time_cap(max_steps)
 
         energy_budget_J = self.max_force_N * self.rail_length_m + 2.0 * m * g * L
         self.speed_bound_m_s = float(np.sqrt(2.0 * energy_budget_J / M))
         self.sway_rate_bound_rad_s = float(np.sqrt(2.0 * energy_budget_J * (M + m) / (m * M * L**2)))
-        self._obs_low = np.array([0.0, -self.speed_bound_m_s, -np.pi, -self.sway_rate_bound_rad_s])
+        pending = np.full(self.dead_time_steps, self.max_force_N)
+        self._obs_low = -np.concatenate([[0.0, self.speed_bound_m_s, np.pi, self.sway_rate_bound_rad_s], pending])
         self._obs_high = -self._obs_low
-        self._obs_high[0] = self.rail_length_m
+        self._obs_low[0], self._obs_high[0] = 0.0, self.rail_length_m
         self.observation_space = spaces.Box(
             self._obs_low.astype(np.float32), self._obs_high.astype(np.float32), dtype=np.float32
         )
@@ -209,15 +224,17 @@ class Crane(ControlTask):
         return (M + m) * state[:, 1] + m * L * state[:, 3] * np.cos(state[:, 2])
 
     def sample_start(self, n: int, rng: np.random.Generator) -> np.ndarray:
-        state = np.zeros((n, 4))
+        state = np.zeros((n, 4 + self.dead_time_steps))
         state[:, 0] = rng.uniform(*self.start_position_m, size=n)
         state[:, 2] = rng.uniform(*self.start_sway_rad, size=n)
         state[:, 3] = rng.uniform(*self.start_sway_rate_rad_s, size=n)
         return state
 
     def batch_step(self, state: np.ndarray, control: np.ndarray, rng: np.random.Generator) -> StepOutcome:
-        s = np.array(state, dtype=np.float64)
-        force_N = np.asarray(control, dtype=np.float64).reshape(s.shape[0], -1)[:, 0]
+        state = np.asarray(state, dtype=np.float64)
+        s = state[:, :4].copy()
+        applied, pending = self._delay(state[:, 4:], np.asarray(control, dtype=np.float64).reshape(s.shape[0], -1))
+        force_N = applied[:, 0]
         if self.force_noise_N > 0:
             force_N = force_N + rng.normal(0.0, self.force_noise_N, size=force_N.shape)
         if self.lock_trolley:
@@ -240,19 +257,20 @@ class Crane(ControlTask):
         )
         success = settled & ~off_rail
         return StepOutcome(
-            next_state=s, base_reward=success.astype(np.float64), terminated=success | off_rail, success=success
+            next_state=np.concatenate([s, pending], axis=1), base_reward=success.astype(np.float64),
+            terminated=success | off_rail, success=success
         )
 
     # --- observation and shaping signals --------------------------------------------------
 
     def observe(self, state: np.ndarray) -> np.ndarray:
-        s = np.asarray(state, dtype=np.float64).reshape(-1, 4).copy()
+        s = np.array(state, dtype=np.float64).reshape(-1, self._obs_low.size)
         s[:, 2] = np.mod(s[:, 2] + np.pi, 2.0 * np.pi) - np.pi
         return np.clip(s, self._obs_low, self._obs_high).astype(np.float32)
 
     def goal_distance(self, obs: np.ndarray) -> np.ndarray:
         """Distance to the goal state in metres (see the class docstring), shape ``(N,)``."""
-        o = np.asarray(obs, dtype=np.float64).reshape(-1, 4)
+        o = np.asarray(obs, dtype=np.float64).reshape(-1, self._obs_low.size)
         sway_amplitude_rad = np.hypot(o[:, 2], o[:, 3] / self.sway_frequency_rad_s)
         braking_m = o[:, 1] ** 2 / (2.0 * self.max_decel_m_s2)
         return np.abs(o[:, 0] - self.target_m) + braking_m + self.rope_length_m * sway_amplitude_rad

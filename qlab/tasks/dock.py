@@ -21,8 +21,11 @@ class Dock(ControlTask):
     One axis along the channel, in metres. The berth is centred at ``x = 0`` and spans
     ``[-berth_half_length_m, +berth_half_length_m]``. The vessel starts behind the berth (negative
     ``x``) and approaches in ``+x``. The quay wall stands ``quay_margin_m`` past the berth's far
-    edge, at ``x_quay = berth_half_length_m + quay_margin_m``. The channel ends behind the start,
-    ``channel_margin_m`` behind the farthest start: ``x_end = -(start_distance_m[1] + channel_margin_m)``.
+    edge, at ``x_quay = berth_half_length_m + quay_margin_m``. The channel ends behind the start:
+    with ``channel_length_m = None`` (default) ``channel_margin_m`` behind the farthest start,
+    ``x_end = -(start_distance_m[1] + channel_margin_m)``; with a length in m at
+    ``x_end = -channel_length_m`` whatever the start range (which must then lie within it;
+    ``channel_margin_m`` is unused), so tasks with different start ranges share one observation box.
 
     ## Dynamics
     ``mass_kg * dv/dt = u - c1 * v - c2 * v * |v|`` and ``dx/dt = v`` with thrust ``u`` in N,
@@ -32,24 +35,33 @@ class Dock(ControlTask):
     ``velocity_noise_m_s > 0`` a Gaussian velocity kick of that standard deviation is added at the
     start of every step (process noise).
 
+    ## Dead time
+    The thrust commanded at step ``k`` acts during step ``k + dead_time_steps``:
+    ``u_applied[k] = u[k - dead_time_steps]`` (a pure delay). The commands given but not yet acting
+    wait in the state, oldest first; at reset they are all zero thrust. With ``dead_time_steps = 0``
+    (default) the thrust acts at once.
+
     ## Observation
-    ``Box(2,)`` float32: ``[position_m, velocity_m_s]``. Bounds: position in ``[x_end, x_quay]``;
-    velocity within ``+-1.25 * v_terminal``, where ``v_terminal`` solves ``c1 v + c2 v^2 = max_thrust_N``.
-    The noise-free physics never leaves these bounds (the sub-step is required short enough that
-    the velocity update is monotone, so full thrust cannot overshoot the terminal speed); a noise
-    kick beyond them is clipped to them.
+    ``Box(2 + dead_time_steps,)`` float32: ``[position_m, velocity_m_s, pending thrusts in N (oldest
+    first)...]``, a Markov observation. Bounds: position in ``[x_end, x_quay]``; velocity within
+    ``+-1.25 * v_terminal``, where ``v_terminal`` solves ``c1 v + c2 v^2 = max_thrust_N``; pending
+    thrusts within ``+-max_thrust_N``. The noise-free physics never leaves these bounds (the sub-step
+    is required short enough that the velocity update is monotone, so full thrust cannot overshoot
+    the terminal speed); a noise kick beyond them is clipped to them.
 
     ## Action
     ``action_kind="discrete"``: ``Discrete(n_levels)``, thrust levels evenly spaced on
     ``[-max_thrust_N, +max_thrust_N]`` (index ``n_levels // 2`` is zero thrust for odd ``n_levels``).
     ``action_kind="continuous"``: ``Box(1,)`` thrust in N, clipped to ``+-max_thrust_N``.
+    With a dead time and discrete actions ``n_levels`` must be odd, so zero thrust is a level.
 
     ## Reward
     1 on success, else 0 (the task's own sparse reward).
 
     ## Start state
     At rest, ``start_distance_m`` behind the berth centre, drawn uniformly from the
-    ``(low, high)`` range in metres. The start distance sets how delayed the feedback is.
+    ``(low, high)`` range in metres, no thrust pending. The start distance sets how delayed the
+    feedback is.
 
     ## Episode end
     * success (terminated, reward 1): at the end of a step the vessel is inside the berth and
@@ -66,13 +78,15 @@ class Dock(ControlTask):
     inside). ``potential = exp(-goal_distance / potential_length_m)`` lies in (0, 1] and is 1 in the
     berth: a value-like estimate of V* for the sparse task (the design notes' calibrated choice,
     30 m). ``default_progress_scale = 0.01`` per metre: closing the default 100 m approach earns 1
-    in total, the same as the success reward.
+    in total, the same as the success reward. Both read the vessel's position only; the
+    ``potential_ahead`` variant takes Phi where the pending thrusts carry the vessel
+    (:meth:`~qlab.tasks.base.ControlTask.potential_ahead`).
 
     ## Parameters (units in the names)
     mass_kg=2000, max_thrust_N=800, linear_drag_N_s_per_m=80, quadratic_drag_N_s2_per_m2=60,
     berth_half_length_m=1, contact_speed_m_s=0.25, quay_margin_m=1.5, start_distance_m=(80, 120),
-    channel_margin_m=30, dt_s=1, substeps=4, max_steps=400, n_levels=5, action_kind="discrete",
-    velocity_noise_m_s=0, potential_length_m=30.
+    channel_margin_m=30, channel_length_m=None, dt_s=1, substeps=4, max_steps=400, n_levels=5,
+    action_kind="discrete", velocity_noise_m_s=0, potential_length_m=30, dead_time_steps=0.
     """
 
     default_progress_scale = 0.01
@@ -88,6 +102,7 @@ class Dock(ControlTask):
         quay_margin_m: float = 1.5,
         start_distance_m: tuple[float, float] = (80.0, 120.0),
         channel_margin_m: float = 30.0,
+        channel_length_m: float | None = None,
         dt_s: float = 1.0,
         substeps: int = 4,
         max_steps: int = 400,
@@ -95,6 +110,7 @@ class Dock(ControlTask):
         action_kind: str = "discrete",
         velocity_noise_m_s: float = 0.0,
         potential_length_m: float = 30.0,
+        dead_time_steps: int = 0,
     ):
         self.mass_kg = require_positive("mass_kg", mass_kg)
         self.max_thrust_N = require_positive("max_thrust_N", max_thrust_N)
@@ -111,18 +127,29 @@ class Dock(ControlTask):
         self.quay_margin_m = require_non_negative("quay_margin_m", quay_margin_m)
         self.start_distance_m = require_range("start_distance_m", start_distance_m, low=self.berth_half_length_m)
         self.channel_margin_m = require_positive("channel_margin_m", channel_margin_m)
+        self.channel_length_m = None if channel_length_m is None else require_positive(
+            "channel_length_m", channel_length_m)
+        if self.channel_length_m is not None and self.start_distance_m[1] > self.channel_length_m:
+            raise ValueError(
+                f"start_distance_m={list(self.start_distance_m)} must lie within channel_length_m="
+                f"{self.channel_length_m} (the channel ends {self.channel_length_m} m behind the berth centre)"
+            )
         self.dt_s = require_positive("dt_s", dt_s)
         self.substeps = require_int("substeps", substeps, 1)
         self.velocity_noise_m_s = require_non_negative("velocity_noise_m_s", velocity_noise_m_s)
         self.potential_length_m = require_positive("potential_length_m", potential_length_m)
 
         self.quay_position_m = self.berth_half_length_m + self.quay_margin_m
-        self.channel_end_m = -(self.start_distance_m[1] + self.channel_margin_m)
+        if self.channel_length_m is None:
+            self.channel_end_m = -(self.start_distance_m[1] + self.channel_margin_m)
+        else:
+            self.channel_end_m = -self.channel_length_m
         self.terminal_speed_m_s = self._speed_at_thrust(self.max_thrust_N)
         self.velocity_limit_m_s = VELOCITY_LIMIT_FACTOR * self.terminal_speed_m_s
         self._check_substep_length()
 
         self._setup_actions(-self.max_thrust_N, self.max_thrust_N, action_kind, n_levels)
+        self._setup_dead_time(dead_time_steps)
         self._setup_time_cap(max_steps)
         self._params: dict[str, Any] = {
             "mass_kg": self.mass_kg,
@@ -134,6 +161,7 @@ class Dock(ControlTask):
             "quay_margin_m": self.quay_margin_m,
             "start_distance_m": list(self.start_distance_m),
             "channel_margin_m": self.channel_margin_m,
+            "channel_length_m": self.channel_length_m,
             "dt_s": self.dt_s,
             "substeps": self.substeps,
             "max_steps": self.max_steps,
@@ -141,9 +169,11 @@ class Dock(ControlTask):
             "action_kind": action_kind,
             "velocity_noise_m_s": self.velocity_noise_m_s,
             "potential_length_m": self.potential_length_m,
+            "dead_time_steps": self.dead_time_steps,
         }
-        self.state_low = np.array([self.channel_end_m, -self.velocity_limit_m_s])
-        self.state_high = np.array([self.quay_position_m, self.velocity_limit_m_s])
+        pending = np.ones(self.dead_time_steps)
+        self.state_low = np.concatenate([[self.channel_end_m, -self.velocity_limit_m_s], -self.max_thrust_N * pending])
+        self.state_high = np.concatenate([[self.quay_position_m, self.velocity_limit_m_s], self.max_thrust_N * pending])
         self.observation_space = spaces.Box(
             self.state_low.astype(np.float32), self.state_high.astype(np.float32), dtype=np.float32
         )
@@ -173,18 +203,20 @@ class Dock(ControlTask):
     # --- physics --------------------------------------------------------------------------
 
     def sample_start(self, n: int, rng: np.random.Generator) -> np.ndarray:
-        """``n`` start states at rest, ``start_distance_m`` behind the berth centre; shape ``(n, 2)``."""
+        """``n`` start states at rest, ``start_distance_m`` behind the berth centre, no thrust pending;
+        shape ``(n, 2 + dead_time_steps)``."""
         lo, hi = self.start_distance_m
-        state = np.zeros((n, 2))
+        state = np.zeros((n, 2 + self.dead_time_steps))
         state[:, 0] = -rng.uniform(lo, hi, size=n)
         return state
 
     def batch_step(self, state: np.ndarray, control: np.ndarray, rng: np.random.Generator) -> StepOutcome:
-        """Advance ``N`` vessels one step of ``dt_s`` under thrust ``control[:, 0]`` in N."""
+        """Advance ``N`` vessels one step of ``dt_s``; the thrust ``control[:, 0]`` in N acts after the dead time."""
         state = np.asarray(state, dtype=np.float64)
         x = state[:, 0].copy()
         v = state[:, 1].copy()
-        thrust_N = np.asarray(control, dtype=np.float64).reshape(-1)
+        applied, pending = self._delay(state[:, 2:], np.asarray(control, dtype=np.float64).reshape(-1, 1))
+        thrust_N = applied[:, 0]
         if self.velocity_noise_m_s > 0:
             v += self.velocity_noise_m_s * rng.standard_normal(v.shape[0])
             np.clip(v, -self.velocity_limit_m_s, self.velocity_limit_m_s, out=v)
@@ -210,8 +242,8 @@ class Dock(ControlTask):
             failed |= strike | left_channel
             any_failed = bool(failed.any())
         success = ~failed & (np.abs(x) <= self.berth_half_length_m) & (np.abs(v) < self.contact_speed_m_s)
-        next_state = np.empty((x.shape[0], 2))
-        next_state[:, 0], next_state[:, 1] = x, v
+        next_state = np.empty((x.shape[0], 2 + self.dead_time_steps))
+        next_state[:, 0], next_state[:, 1], next_state[:, 2:] = x, v, pending
         return StepOutcome(
             next_state=next_state,
             base_reward=success.astype(np.float64),
@@ -220,7 +252,7 @@ class Dock(ControlTask):
         )
 
     def observe(self, state: np.ndarray) -> np.ndarray:
-        """``[position_m, velocity_m_s]`` as float32, clipped to the observation bounds."""
+        """``[position_m, velocity_m_s, pending thrusts...]`` as float32, clipped to the observation bounds."""
         clipped = np.minimum(np.maximum(np.asarray(state, dtype=np.float64), self.state_low), self.state_high)
         # Rounding to float32 is monotone, so clipped values stay inside the float32 bounds.
         return clipped.astype(np.float32)

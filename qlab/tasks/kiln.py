@@ -95,7 +95,10 @@ class Kiln(ControlTask):
         d = max(0, required_soak_h - soak_h) + gap / ramp_limit_degC_per_h   (soak in whole steps)
 
     about 5.9 h from a cold start with the defaults; ``default_progress_scale = 0.05`` per hour
-    pays about 0.3 in total over a perfect batch, under a third of the success reward.
+    pays about 0.3 in total over a perfect batch, under a third of the success reward. The
+    ``potential_ahead`` variant takes Phi after the pending commands have acted
+    (:meth:`~qlab.tasks.base.ControlTask.potential_ahead`); it needs them in the observation, so
+    ``observe_pending=False`` does not offer it.
 
     **Defaults** (invented, chosen so that a rule-based controller that looks ahead through the
     pending commands succeeds while a random controller almost never does): 5 min steps, tau =
@@ -142,7 +145,6 @@ class Kiln(ControlTask):
         if not np.isfinite(ambient_degC) or ambient_degC < ABSOLUTE_ZERO_DEGC:
             raise ValueError(f"ambient_degC must be a finite temperature >= {ABSOLUTE_ZERO_DEGC}, got {ambient_degC!r}")
         self.ambient_degC = float(ambient_degC)
-        self.dead_time_steps = require_int("dead_time_steps", dead_time_steps, 0)
         self.ramp_steps = require_int("ramp_steps", ramp_steps, 1)
         self.soak_steps = require_int("soak_steps", soak_steps, 1)
         self.cool_steps = require_int("cool_steps", cool_steps, 0)
@@ -179,8 +181,11 @@ class Kiln(ControlTask):
         self.gap_max_degC = max(band[0] - self.temperature_low_degC, self.temperature_high_degC - band[1])
 
         self._setup_actions(0.0, 1.0, action_kind, n_levels)
+        self._setup_dead_time(dead_time_steps)
         self._setup_time_cap(self.schedule_steps + 1)
-        n_shown = self.dead_time_steps if self.observe_pending else 0
+        if not self.observe_pending:  # the look-ahead needs the pending commands in the observation
+            self.shaping_variants = tuple(v for v in Kiln.shaping_variants if v != "potential_ahead")
+        n_shown = self.pending_in_observation
         low = np.concatenate([[0.0, self.temperature_low_degC, 0.0, 0.0], np.zeros(n_shown)])
         high = np.concatenate([[1.0, self.temperature_high_degC, self.schedule_steps * self.dt_h,
                                 float(self.schedule_steps)], np.ones(n_shown)])
@@ -197,13 +202,8 @@ class Kiln(ControlTask):
     def batch_step(self, state: np.ndarray, control: np.ndarray, rng: np.random.Generator) -> StepOutcome:
         """One control step of ``dt_s`` for every copy: dead-time queue, exact first-order lag, scoring."""
         step, temp, soak, violations = state[:, 0], state[:, 1], state[:, 2], state[:, 3]
-        command = control[:, 0]
-        if self.dead_time_steps:
-            applied = state[:, 4]
-            queue = np.column_stack([state[:, 5:], command])
-        else:
-            applied = command
-            queue = state[:, 4:]
+        applied, queue = self._delay(state[:, 4:], control[:, :1])
+        applied = applied[:, 0]
         steady = self.ambient_degC + self.heating_rate_degC_per_s * self.time_constant_s * applied
         new_temp = steady + (temp - steady) * self.decay
         if self.temperature_noise_degC > 0:
@@ -225,6 +225,17 @@ class Kiln(ControlTask):
         head = np.column_stack([state[:, 0] / self.schedule_steps, state[:, 1], state[:, 2] * self.dt_h, state[:, 3]])
         obs = np.concatenate([head, state[:, 4:]], axis=1) if self.observe_pending else head
         return obs.astype(np.float32)
+
+    @property
+    def pending_in_observation(self) -> int:
+        """The pending commands shown: all of them, or none with ``observe_pending=False``."""
+        return self.dead_time_steps if self.observe_pending else 0
+
+    def state_from_observation(self, obs: np.ndarray) -> np.ndarray:
+        """The state behind observations that show the pending commands (step and soak back to whole steps)."""
+        o = np.asarray(obs, dtype=np.float64)
+        head = np.column_stack([np.rint(o[:, 0] * self.schedule_steps), o[:, 1], np.rint(o[:, 2] / self.dt_h), o[:, 3]])
+        return np.concatenate([head, o[:, 4:]], axis=1)
 
     # --- shaping signals ------------------------------------------------------------------
 
