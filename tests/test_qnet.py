@@ -571,7 +571,7 @@ def test_states_that_miss_scaler_or_priorities_are_refused():
     unscaled = QNetLearner(box, actions, QNetConfig(scale_inputs=False), seed=0)
     with pytest.raises(ValueError, match=r"has no input-scaler statistics \('scaler'\).*scale_inputs=True"):
         QNetLearner(box, actions, QNetConfig(), seed=0).load_state_dict(unscaled.state_dict())
-    uniform = QNetLearner(box, actions, QNetConfig(), seed=0)
+    uniform = QNetLearner(box, actions, QNetConfig(replay_kind="uniform"), seed=0)
     with pytest.raises(ValueError, match=r"no \['priority', 'max_priority'\] entries"):
         QNetLearner(box, actions, QNetConfig(replay_kind="prioritized"), seed=0).load_state_dict(uniform.state_dict())
 

@@ -166,6 +166,8 @@ def settings_figure(
         ax.axhline(budget, color="#888888", linewidth=0.8, linestyle="--", zorder=1)
         if min(drawn) > 0 and max(drawn) > LOG_SPAN * min(drawn):
             _log_steps_axis(ax)
+        else:
+            ax.set_ylim(0.0, 1.08 * budget)
         ax.set_xticks(positions, ticks)
         ax.set_xlabel(xlabel)
         ax.set_ylabel(f"median environment steps to success >= {threshold:g}")

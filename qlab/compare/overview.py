@@ -36,6 +36,13 @@ SETTINGS_FIGURE = "steps_by_task_setting.png"
 CENSORING_RULE = ("A run that never reaches the threshold within its budget is censored and counts as never "
                   "(infinitely many steps), so a median over runs of which half or more are censored is not reached "
                   "within the budget: it is printed as a lower bound, `> budget`, with no interval.")
+#: how a speed-up (median steps of a base arm over those of an arm) is estimated and printed
+SPEED_UP_RULE = ("95% percentile bootstrap intervals, the runs of the two arms resampled independently; a run that "
+                 "meets the threshold at step 0 counts as 1 step. Where a median is censored the speed-up is only a "
+                 "bound, with no interval: `> x` when the base arm's median lies beyond the budget (x = budget / "
+                 "median of the arm), `< x` when the arm's does (x = median of the base arm / budget), `undetermined` "
+                 "when both do. An interval end 0.00 or inf: in 2.5% or more of the resamples a median was censored "
+                 "(resamples where both were count at both ends).")
 CAUTION = ("> Caution: these results come from simulation only. A controller learned here is not fit for real "
            "plant as it is; validate it under local codes and licensed engineering practice.")
 
@@ -164,12 +171,7 @@ def speed_up_lines(settings: list[TaskSetting], measures: list[dict[str, dict[st
     """The table of each shaping arm's speed-up over ``none`` (same learner) per task setting."""
     lines = ["## Speed-up over `none` across task settings", "",
              "Median steps to the threshold of `none` divided by those of the arm, same learner and task setting: "
-             "above 1 the arm reaches the threshold sooner. 95% percentile bootstrap intervals, the runs of the two "
-             "arms resampled independently; a run that meets the threshold at step 0 counts as 1 step. Where a "
-             "median is censored the speed-up is only a bound, with no interval: `> x` when the median of `none` "
-             "lies beyond the budget (x = budget / median of the arm), `< x` when the arm's does (x = median of "
-             "`none` / budget), `undetermined` when both do. An interval end 0.00 or inf: in 2.5% or more of the "
-             "resamples a median was censored (resamples where both were count at both ends).", ""]
+             f"above 1 the arm reaches the threshold sooner. {SPEED_UP_RULE}", ""]
     if not any(m.speed_up is not None for ms in measures for arms in ms.values() for m in arms.values()):
         return [*lines, "No learner has both a `none` arm and a shaped arm in one task setting: nothing to compare.",
                 ""]

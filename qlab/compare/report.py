@@ -34,6 +34,7 @@ from qlab.compare.measures import (
 from qlab.compare.overview import (
     CAUTION,
     CENSORING_RULE,
+    SPEED_UP_RULE,
     failure_counts,
     folder_notes,
     median_steps,
@@ -285,7 +286,9 @@ def performance_lines(
     else:
         lines.append("No learner has both a `none` arm and a shaped arm: nothing to compare.")
     lines += ["", *against_start_lines(contrasts), f"## Steps to a success rate of {threshold:g}", "",
-              f"First evaluation step at which a run's success rate reaches the threshold. {CENSORING_RULE}", "",
+              f"First evaluation step at which a run's success rate reaches the threshold. {CENSORING_RULE} The "
+              "speed-ups in the summary and against Q started at Phi are the median steps of the base arm divided "
+              f"by those of the arm (above 1 the arm is faster). {SPEED_UP_RULE}", "",
               "| learner | arm | runs | reached | never reached (censored) | budget | median steps |",
               "|---|---|---|---|---|---|---|"]
     lines += [f"{_row_start(lr, a)} {m.n_runs} | {int(m.reached.sum())} | {m.n_censored} | {m.budget:,.0f} | "

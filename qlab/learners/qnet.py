@@ -86,11 +86,11 @@ class QNetConfig:
     hidden_sizes: list[int] = field(default_factory=lambda: [64, 64])  # ReLU MLP widths
     gamma: float = 0.99
     learning_rate: float = 1e-3  # Adam step size
-    batch_size: int = 64
+    batch_size: int = 32
     replay_capacity: int = 100_000  # transitions
-    warmup_steps: int = 1_000  # env steps before the first update
-    update_every: int = 1  # env steps per gradient update
-    target_update_every: int = 500  # updates between hard copies (used when polyak_tau == 0)
+    warmup_steps: int = 500  # env steps before the first update
+    update_every: int = 2  # env steps per gradient update
+    target_update_every: int = 250  # updates between hard copies (used when polyak_tau == 0)
     polyak_tau: float = 0.0  # > 0: target <- tau * online + (1 - tau) * target after every update
     loss: str = "huber"  # "squared" (0.5 d^2) or "huber" (0.5 d^2 inside huber_delta, linear beyond)
     huber_delta: float = 1.0
@@ -98,12 +98,12 @@ class QNetConfig:
     penalty_coef: float = 0.0
     double_estimator: bool = True  # Double DQN targets: online net picks, target net scores (van Hasselt 2010)
     n_step: int = 1
-    epsilon: ScheduleConfig = field(default_factory=lambda: ScheduleConfig("linear", 1.0, 0.05, 10_000.0))  # env steps
+    epsilon: ScheduleConfig = field(default_factory=lambda: ScheduleConfig("linear", 1.0, 0.05, 5_000.0))  # env steps
     grad_clip_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
     scale_inputs: bool = True  # bounded observation dimensions onto [-1, 1], the others standardised (running)
     head: str = "plain"  # "plain" (one linear output per action) or "dueling" (Wang et al. 2016)
-    replay_kind: str = "uniform"  # "uniform" or "prioritized" (proportional, Schaul et al. 2016)
+    replay_kind: str = "prioritized"  # "uniform" or "prioritized" (proportional, Schaul et al. 2016)
     priority_exponent: float = 0.6  # alpha: p_i = (|TD error| + priority_offset) ** alpha; 0 gives uniform
     priority_offset: float = 1e-6  # epsilon, keeps every slot drawable
     importance_exponent_start: float = 0.4  # beta at step 0, annealed linearly to 1
