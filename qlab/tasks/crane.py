@@ -86,6 +86,17 @@ class Crane(ControlTask):
     the first four observation dimensions only; the ``potential_ahead`` variant takes Phi where
     the pending forces carry the crane (:meth:`~qlab.tasks.base.ControlTask.potential_ahead`).
 
+    **Learnability** (measured, defaults unchanged; ``results/crane_learnable/CALIBRATION.md``): uniformly
+    random forces settled the load in 6 of 20,000 episodes; the LQ controller above in 199 of 200, the
+    fastest after 28 control steps (median 31; a bang-bang lower bound over 9 m is 26). The learners'
+    default sizes over the observation space's energy bounds (+-23.5 m/s, +-pi, +-5.8 rad/s) make cells
+    far wider than the tolerances (20 table bins: 1 m, 2.35 m/s, 0.31 rad, 0.58 rad/s against tolerance
+    widths 0.5 m, 0.2 m/s, 0.1 rad, 0.2 rad/s): tabular and linear failed at 100k steps. Linear
+    Q-learning on 8 tilings of [20, 14, 9, 7] tiles over x in [-0.25, 19.75] m, x' in +-3.5 m/s, theta in
+    +-0.45 rad, theta' in +-0.7 rad/s, epsilon 0.5 -> 0.01 over 400k steps, 500k steps (``series=crane_learnable``,
+    ~30-50 s a run on one core): IQM final success over seeds 5-14 of 1.00 without shaping and 0.74
+    with ``potential`` (which reaches 0.5 faster, median 25k steps, but ends lower).
+
     **Parameters** (defaults invented, plausible for a small workshop gantry)
 
     ========================  =======  ==========================================================
