@@ -69,14 +69,13 @@ def read_metrics(run_dir: Path, up_to_step: int | None = None) -> list[tuple[int
     rows = []
     with path.open(newline="") as fh:
         for record in csv.DictReader(fh):
-            if up_to_step is None:
-                rows.append((int(record["step"]), record["tag"], float(record["value"])))
-                continue
             try:
                 row = (int(record["step"]), record["tag"], float(record["value"]))
             except (TypeError, ValueError):
+                if up_to_step is None:  # a finished table has no torn line
+                    raise
                 break
-            if row[0] > up_to_step:
+            if up_to_step is not None and row[0] > up_to_step:
                 break
             rows.append(row)
     return rows
