@@ -56,7 +56,7 @@ class SumTree:
         node = unique + self.size
         self.nodes[node] = priority[::-1][last]
         for _ in range(self.depth):
-            node = np.unique(node >> 1)
+            node = node >> 1  # a parent named twice gets the same sum twice: no need to deduplicate
             self.nodes[node] = self.nodes[2 * node] + self.nodes[2 * node + 1]
 
     def rebuild(self, priority: np.ndarray) -> None:
