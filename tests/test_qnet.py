@@ -82,9 +82,10 @@ def test_q_converges_to_value_iteration_on_a_finite_mdp():
     P, R = _slippery_chain()
     gamma, n_states, goal = 0.9, P.shape[1], P.shape[1] - 1
     q_star = value_iteration(P, R, gamma)  # exact Q* (qlab.reference, checked there against Sutton & Barto)
-    cfg = QNetConfig(hidden_sizes=[32], gamma=gamma, learning_rate=3e-3, batch_size=64, replay_capacity=20_000,
-                     warmup_steps=256, update_every=16, target_update_every=50, loss="squared", double_estimator=True,
-                     epsilon=ScheduleConfig("constant", 0.0))
+    # n_step=1: the transitions are drawn independently, not along episodes, so only one-step targets apply
+    cfg = QNetConfig(hidden_sizes=[32], gamma=gamma, n_step=1, learning_rate=3e-3, batch_size=64,
+                     replay_capacity=20_000, warmup_steps=256, update_every=16, target_update_every=50, loss="squared",
+                     double_estimator=True, epsilon=ScheduleConfig("constant", 0.0))
     learner = QNetLearner(spaces.Box(0.0, 1.0, (n_states,)), spaces.Discrete(2), cfg, seed=0)
     rng = np.random.default_rng(0)
     one_hot = np.eye(n_states, dtype=np.float32)
@@ -110,9 +111,10 @@ def test_greedy_action_follows_the_lq_gain():
                    control_bound=1.0, max_steps=50)
     task = env.unwrapped
     K, _ = lq_solution(A, B, Q, R, gamma)  # discounted Riccati solution (qlab.reference.lq, checked there)
-    cfg = QNetConfig(hidden_sizes=[64, 64], gamma=gamma, learning_rate=1e-3, batch_size=128, replay_capacity=50_000,
-                     warmup_steps=512, update_every=16, target_update_every=100, loss="squared", double_estimator=True,
-                     epsilon=ScheduleConfig("constant", 0.0))
+    # n_step=1: the transitions are drawn independently, not along episodes, so only one-step targets apply
+    cfg = QNetConfig(hidden_sizes=[64, 64], gamma=gamma, n_step=1, learning_rate=1e-3, batch_size=128,
+                     replay_capacity=50_000, warmup_steps=512, update_every=16, target_update_every=100, loss="squared",
+                     double_estimator=True, epsilon=ScheduleConfig("constant", 0.0))
     learner = QNetLearner(env.observation_space, env.action_space, cfg, seed=0)
     rng = np.random.default_rng(0)
     for _ in range(2500):  # states uniform on [-2, 2], actions uniform on the grid: the task's own physics

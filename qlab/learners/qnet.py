@@ -97,7 +97,7 @@ class QNetConfig:
     weight_penalty: str = "none"  # "none", "l2" (sum w^2) or "l1" (sum |w|) over weight matrices
     penalty_coef: float = 0.0
     double_estimator: bool = True  # Double DQN targets: online net picks, target net scores (van Hasselt 2010)
-    n_step: int = 1
+    n_step: int = 5  # chosen in results/qnet_tuning_dock, stage 3 (selection.md)
     epsilon: ScheduleConfig = field(default_factory=lambda: ScheduleConfig("linear", 1.0, 0.05, 5_000.0))  # env steps
     grad_clip_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
