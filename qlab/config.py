@@ -223,7 +223,7 @@ def to_container(cfg: DictConfig) -> dict[str, Any]:
 
 
 #: config groups a command line can choose options of (``learner=qnet``)
-GROUPS = ("task", "shaping", "learner", "series")
+GROUPS = ("task", "shaping", "learner", "approach", "series")
 
 
 def group_options(group: str) -> list[str]:
