@@ -158,3 +158,22 @@ def test_settings_without_distinct_numbers_sit_in_order():
     assert setting_axis(numbers) == ([2.0, 0.0], ["2", "0"], "task.delay_steps")
     two_keys = [setting(**{"task.a": 1, "task.b": "x"}), setting(**{"task.a": 2, "task.b": "y"})]
     assert setting_axis(two_keys) == ([0.0, 1.0], ["a=1, b=x", "a=2, b=y"], "task setting (in order)")
+
+
+def test_budget_line_follows_each_settings_budget():
+    from types import SimpleNamespace
+
+    import matplotlib.pyplot as plt
+
+    def arm(budget):
+        return {"tabular": {"none": SimpleNamespace(budget=budget)}}
+
+    fig, (level, rising) = plt.subplots(1, 2)
+    try:
+        assert figures._budget_line(level, [25.0, 60.0], [arm(30_000), arm(30_000)], "tabular") == 30_000
+        assert list(level.lines[0].get_ydata()) == [30_000, 30_000]  # axhline: one level across the panel
+        assert figures._budget_line(rising, [60.0, 25.0], [arm(80_000), arm(30_000)], "tabular") == 80_000
+        line = rising.lines[0]
+        assert list(line.get_xdata()) == [25.0, 60.0] and list(line.get_ydata()) == [30_000, 80_000]
+    finally:
+        plt.close(fig)

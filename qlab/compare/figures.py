@@ -150,8 +150,8 @@ def settings_figure(
 
     ``measures[i]`` are the measures of the setting drawn at ``positions[i]`` (tick label ``ticks[i]``).
     Filled circles: medians, with their bootstrap interval as a capped bar (no cap at the top: no upper
-    end, the bar cut at the budget); open triangles pointing up at the budget (dashed): censored
-    medians, lower bounds.
+    end, the bar cut at the budget); open triangles pointing up at the budget (dashed, each setting's own
+    where the settings' budgets differ): censored medians, lower bounds.
     The value axis is logarithmic when the values drawn span more than :data:`LOG_SPAN`.
     """
     learners = sorted({lr for ms in measures for lr in ms})
@@ -162,8 +162,7 @@ def settings_figure(
         for offset, arm in zip(_dodged(positions, len(arms)), arms, strict=True):
             x, ms = _arm_settings(positions, measures, learner, arm)
             drawn += _arm_at_settings(ax, x + offset, ms, arm_colour(arm), arm)
-        budget = max(m.budget for ms in measures for m in ms.get(learner, {}).values())
-        ax.axhline(budget, color="#888888", linewidth=0.8, linestyle="--", zorder=1)
+        budget = _budget_line(ax, positions, measures, learner)
         if min(drawn) > 0 and max(drawn) > LOG_SPAN * min(drawn):
             _log_steps_axis(ax)
         else:
@@ -177,6 +176,20 @@ def settings_figure(
         ax.legend(handles=[*ax.get_legend_handles_labels()[0], bound], fontsize=7.5, frameon=False,
                   loc="upper left", bbox_to_anchor=(1.0, 1.0))
     return fig
+
+
+def _budget_line(ax, positions: list[float], measures: list[dict[str, dict[str, ArmMeasures]]], learner: str) -> int:
+    """The dashed budget line of one panel: level where every setting has the same budget, else through each
+    setting's budget (a study may fix a longer budget for a longer delay). Returns the largest budget."""
+    at = sorted((p, max(m.budget for m in ms[learner].values()))
+                for p, ms in zip(positions, measures, strict=True) if ms.get(learner))
+    budgets = [b for _, b in at]
+    if len(set(budgets)) == 1:
+        ax.axhline(budgets[0], color="#888888", linewidth=0.8, linestyle="--", zorder=1)
+    else:
+        ax.plot([p for p, _ in at], budgets, color="#888888", linewidth=0.8, linestyle="--", marker="_",
+                markersize=12, zorder=1)
+    return max(budgets)
 
 
 def _log_steps_axis(ax) -> None:

@@ -159,9 +159,9 @@ def steps_lines(
             "one panel per learner, one line per shaping arm in the colours of every figure of these reports (arms "
             "at one setting drawn slightly apart). Filled circles: the median over the reported runs, with a bar for "
             "its 95% percentile bootstrap interval (runs resampled); a bar without a cap at the top runs into the "
-            "dashed budget line and has no upper end (in 2.5% or more of the resamples the median was censored). "
-            "Open triangles pointing up, at the "
-            "budget: half or more of the runs never reached the threshold, so the median lies beyond the budget (a "
+            "dashed budget line (through each setting's own budget) and has no upper end (in 2.5% or more of the "
+            "resamples the median was censored). Open triangles pointing up, at the budget: half or more of the "
+            "runs never reached the threshold, so the median lies beyond the budget (a "
             "lower bound, no interval) and the line breaks there. The step axis is logarithmic when the values drawn "
             f"span more than a factor of {figures.LOG_SPAN:g}. {CENSORING_RULE}", "",
             *across_table(settings, measures, median_steps_cell), ""]
