@@ -184,11 +184,11 @@ def _budget_line(ax, positions: list[float], measures: list[dict[str, dict[str, 
     at = sorted((p, max(m.budget for m in ms[learner].values()))
                 for p, ms in zip(positions, measures, strict=True) if ms.get(learner))
     budgets = [b for _, b in at]
+    dashed = {"color": "#888888", "linewidth": 0.8, "linestyle": "--", "zorder": 1}
     if len(set(budgets)) == 1:
-        ax.axhline(budgets[0], color="#888888", linewidth=0.8, linestyle="--", zorder=1)
+        ax.axhline(budgets[0], **dashed)
     else:
-        ax.plot([p for p, _ in at], budgets, color="#888888", linewidth=0.8, linestyle="--", marker="_",
-                markersize=12, zorder=1)
+        ax.plot([p for p, _ in at], budgets, marker="_", markersize=12, **dashed)
     return max(budgets)
 
 
