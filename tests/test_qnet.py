@@ -406,6 +406,16 @@ def test_running_moments_match_numpy_on_a_stream_in_uneven_batches():
     np.testing.assert_allclose(z.std(axis=0), 1.0, rtol=1e-4)  # the floor 1e-8 against var ~1e-4: 5e-5 relative
 
 
+def test_unbounded_dimensions_pass_unchanged_without_standardisation():
+    scaler = InputScaler(np.array([-4.0, -np.inf]), np.array([4.0, np.inf]), standardise=False)
+    stream = np.random.default_rng(4).normal(3.0, 2.0, (50, 2))
+    scaler.update(stream)
+    assert scaler.count == 0
+    np.testing.assert_allclose(scaler.transform(stream), np.column_stack([stream[:, 0] / 4.0, stream[:, 1]]), rtol=1e-6)
+    with pytest.raises(ValueError, match="standardise_unbounded must be true or false"):
+        QNetConfig(standardise_unbounded="no")
+
+
 def test_learner_scales_inputs_with_statistics_of_learned_observations_only():
     box = spaces.Box(np.array([-2.0, -np.inf], np.float32), np.array([2.0, np.inf], np.float32))
     cfg = QNetConfig(hidden_sizes=[8], batch_size=4, warmup_steps=100)

@@ -20,7 +20,8 @@ Input scaling (``scale_inputs``): the replay stores raw observations; they are s
 ``greedy``, ``value``, ``q_values`` and on both sides of an update. Bounded observation
 dimensions map affinely onto [-1, 1]; unbounded ones are standardised with running moments that
 are updated from the ``obs`` of each ``learn`` batch, before that batch's updates, and nowhere
-else (acting never changes them). The moments are part of the state, so resuming is exact.
+else (acting never changes them); with ``standardise_unbounded=False`` unbounded dimensions enter
+the network as they are. The moments are part of the state, so resuming is exact.
 
 Batches: ``act`` takes ``(B, obs_dim)`` observations, e.g. of ``B`` task copies; ``learn`` takes a
 batch of ``B`` transitions, one per copy, and counts ``B`` environment steps, so the number of
@@ -102,6 +103,7 @@ class QNetConfig:
     grad_clip_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
     scale_inputs: bool = True  # bounded observation dimensions onto [-1, 1], the others standardised (running)
+    standardise_unbounded: bool = True  # false: with scale_inputs, unbounded dimensions enter unchanged
     head: str = "plain"  # "plain" (one linear output per action) or "dueling" (Wang et al. 2016)
     replay_kind: str = "prioritized"  # "uniform" or "prioritized" (proportional, Schaul et al. 2016)
     priority_exponent: float = 0.6  # alpha: p_i = (|TD error| + priority_offset) ** alpha; 0 gives uniform
@@ -131,8 +133,9 @@ class QNetConfig:
         check_epsilon("epsilon", self.epsilon)
         require_non_negative("grad_clip_norm", self.grad_clip_norm, note="(0 disables)")
         require_int("torch_threads", self.torch_threads, 1)
-        if not isinstance(self.scale_inputs, bool):
-            raise ValueError(f"scale_inputs must be true or false, got {self.scale_inputs!r}")
+        for name in ("scale_inputs", "standardise_unbounded"):
+            if not isinstance(getattr(self, name), bool):
+                raise ValueError(f"{name} must be true or false, got {getattr(self, name)!r}")
         require_choice("head", self.head, HEADS)
         require_choice("replay_kind", self.replay_kind, REPLAY_KINDS)
         require_non_negative("priority_exponent", self.priority_exponent)
@@ -185,7 +188,7 @@ class QNetLearner:
         self.rng = np.random.default_rng(seed)
         self.torch_generator = torch.Generator().manual_seed(int(seed))
         self._low, self._high = observation_space.low, observation_space.high
-        self.scaler = InputScaler(self._low, self._high) if config.scale_inputs else None
+        self.scaler = InputScaler(self._low, self._high, config.standardise_unbounded) if config.scale_inputs else None
         self.online = build_qnet(self.obs_dim, config.hidden_sizes, self.n_actions, config.head, self.torch_generator)
         self.target = copy.deepcopy(self.online).requires_grad_(False)
         self.optimizer = torch.optim.Adam(self.online.parameters(), lr=config.learning_rate)
@@ -228,7 +231,7 @@ class QNetLearner:
             net = build_qnet(self.obs_dim, self.config.hidden_sizes, self.n_actions, self.config.head, generator)
             observations = np.asarray(observations, dtype=np.float32).reshape(-1, self.obs_dim)
             if self.config.scale_inputs:
-                scaler = InputScaler(self._low, self._high)
+                scaler = InputScaler(self._low, self._high, self.config.standardise_unbounded)
                 scaler.update(observations)
                 observations = scaler.transform(observations)
             x = torch.from_numpy(observations)

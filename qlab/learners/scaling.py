@@ -4,7 +4,8 @@ A dimension with finite ``low`` and ``high`` in the observation ``Box`` is mappe
 [-1, 1] (``low -> -1``, ``high -> 1``; a dimension with ``low == high`` maps to 0). Every other
 dimension is standardised, ``(x - mean) / sqrt(var + VARIANCE_FLOOR)``, with the running mean and
 population variance of the observations given to :meth:`InputScaler.update`; before any update
-it passes through unchanged. The running moments are combined batch by batch with the pairwise
+it passes through unchanged. With ``standardise=False`` the unbounded dimensions always pass
+through unchanged and no moments are kept. The running moments are combined batch by batch with the pairwise
 rule of Chan, Golub & LeVeque (1979), so a stream fed in batches of any sizes gives the moments
 of the whole stream (up to rounding), vectorised over rows and dimensions.
 """
@@ -22,12 +23,13 @@ VARIANCE_FLOOR = 1e-8
 class InputScaler:
     """Affine map of bounded dimensions onto [-1, 1], running standardisation of the others."""
 
-    def __init__(self, low: np.ndarray, high: np.ndarray):
+    def __init__(self, low: np.ndarray, high: np.ndarray, standardise: bool = True):
         low = np.asarray(low, dtype=np.float64).reshape(-1)
         high = np.asarray(high, dtype=np.float64).reshape(-1)
         if low.shape != high.shape or np.any(low > high):
             raise ValueError(f"low and high must be bounds of the same shape with low <= high, got {low}, {high}")
         self.bounded = np.isfinite(low) & np.isfinite(high)
+        self.standardise = bool(standardise)
         low, high = np.where(self.bounded, low, -1.0), np.where(self.bounded, high, 1.0)  # unbounded: identity
         self.center = 0.5 * (low + high)
         width = 0.5 * (high - low)
@@ -45,7 +47,7 @@ class InputScaler:
         """Fold a batch of observations ``(B, obs_dim)`` into the running mean and variance."""
         x = np.asarray(obs, dtype=np.float64).reshape(-1, self.mean.size)
         n_batch = x.shape[0]
-        if n_batch == 0:
+        if n_batch == 0 or not self.standardise:
             return
         batch_mean = x.mean(axis=0)
         batch_m2 = np.square(x - batch_mean).sum(axis=0)
