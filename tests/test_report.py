@@ -352,6 +352,15 @@ def test_swept_keys_ignore_task_settings(delay, sweep):
         select(study, "tabular")  # runs of two task settings are never pooled
 
 
+def test_a_setting_added_after_some_runs_is_not_a_swept_key(sweep):
+    runs = load_study(sweep).runs
+    for run in runs[::2]:  # as if these ran before the setting existed: their configs lack it
+        del run.flat["learner.step_size_count"]
+    assert swept_keys(runs) == ["learner.step_size.start"]
+    runs[1].flat["learner.step_size_count"] = "visits"  # two values among the runs that have it: swept
+    assert swept_keys(runs) == ["learner.step_size.start", "learner.step_size_count"]
+
+
 def test_failures_score_the_worst_return_of_their_task_setting(delay, tmp_path):
     broken = Path(shutil.copytree(delay, tmp_path / "broken"))
     for run in broken.glob("delay=*"):

@@ -36,10 +36,15 @@ class Selection:
 
 
 def swept_keys(runs: list[Run]) -> list[str]:
-    """Hyperparameter keys whose values differ between ``runs`` (never ``task.*``: see :meth:`Run.setting`)."""
+    """Hyperparameter keys whose values differ between ``runs`` (never ``task.*``: see :meth:`Run.setting`).
+
+    A key missing from some runs' configs is a setting added after they ran; qlab adds settings with
+    defaults that keep the earlier behaviour, so a missing key differs only where the runs that have
+    it disagree among themselves.
+    """
     settings = [r.setting() for r in runs]
     keys = sorted(set().union(*settings)) if settings else []
-    return [k for k in keys if len({repr(s.get(k)) for s in settings}) > 1]
+    return [k for k in keys if len({repr(s[k]) for s in settings if k in s}) > 1]
 
 
 def setting_label(run: Run, keys: list[str]) -> str:
