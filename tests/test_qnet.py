@@ -418,7 +418,7 @@ def test_unbounded_dimensions_pass_unchanged_without_standardisation():
 
 def test_learner_scales_inputs_with_statistics_of_learned_observations_only():
     box = spaces.Box(np.array([-2.0, -np.inf], np.float32), np.array([2.0, np.inf], np.float32))
-    cfg = QNetConfig(hidden_sizes=[8], batch_size=4, warmup_steps=100)
+    cfg = QNetConfig(hidden_sizes=[8], batch_size=4, warmup_steps=100, standardise_unbounded=True)
     learner = QNetLearner(box, spaces.Discrete(3), cfg, seed=0)
     rng = np.random.default_rng(1)
     seen = []
@@ -446,7 +446,8 @@ def test_best_fit_scales_by_the_fitted_observations_not_the_learner(head):
     rng = np.random.default_rng(2)
     obs = np.column_stack([rng.uniform(0, 4, 40), rng.normal(30.0, 7.0, 40)]).astype(np.float32)
     targets = np.column_stack([obs[:, 0] - 0.01 * obs[:, 1], np.sin(obs[:, 0])])
-    cfg = QNetConfig(hidden_sizes=[8], batch_size=4, warmup_steps=0, update_every=4, head=head)
+    cfg = QNetConfig(hidden_sizes=[8], batch_size=4, warmup_steps=0, update_every=4, head=head,
+                     standardise_unbounded=True)
     trained = QNetLearner(box, spaces.Discrete(2), cfg, seed=5)
     for _ in range(3):  # other weights and other running statistics
         trained.learn(Transitions(obs[:4] * 3, np.zeros(4, np.int64), np.ones(4), obs[:4], np.zeros(4, bool),
@@ -561,8 +562,8 @@ def test_prioritized_dueling_scaled_learner_resumes_exactly(tmp_path):
     box = spaces.Box(np.array([-1.0, -np.inf], np.float32), np.array([1.0, np.inf], np.float32))
     cfg = QNetConfig(hidden_sizes=[16, 16], batch_size=8, replay_capacity=120, warmup_steps=16, update_every=2,
                      target_update_every=5, n_step=3, head="dueling", replay_kind="prioritized",
-                     importance_anneal_steps=200, epsilon=ScheduleConfig("linear", 1.0, 0.1, 100.0))
-    assert cfg.scale_inputs
+                     importance_anneal_steps=200, epsilon=ScheduleConfig("linear", 1.0, 0.1, 100.0),
+                     standardise_unbounded=True)  # the running moments are part of what resumes
     batches = _random_batches(40, 4, seed=9)
     full = QNetLearner(box, spaces.Discrete(3), cfg, seed=1)
     for batch in batches[:25]:  # 100 steps: the replay (120 slots, 30 rows of 4) has not wrapped yet

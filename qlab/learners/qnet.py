@@ -18,10 +18,11 @@ Polyak averaging.
 Input scaling (``scale_inputs``): the replay stores raw observations; they are scaled
 (:class:`~qlab.learners.scaling.InputScaler`) whenever they enter a network, in ``act``,
 ``greedy``, ``value``, ``q_values`` and on both sides of an update. Bounded observation
-dimensions map affinely onto [-1, 1]; unbounded ones are standardised with running moments that
-are updated from the ``obs`` of each ``learn`` batch, before that batch's updates, and nowhere
-else (acting never changes them); with ``standardise_unbounded=False`` unbounded dimensions enter
-the network as they are. The moments are part of the state, so resuming is exact.
+dimensions map affinely onto [-1, 1]. Unbounded ones enter as they are by default
+(``standardise_unbounded=False``: CartPole-v1's velocities, already of order 1, held a learned
+policy better so); with ``standardise_unbounded=True`` they are standardised with running moments
+that are updated from the ``obs`` of each ``learn`` batch, before that batch's updates, and nowhere
+else (acting never changes them). The moments are part of the state, so resuming is exact.
 
 Batches: ``act`` takes ``(B, obs_dim)`` observations, e.g. of ``B`` task copies; ``learn`` takes a
 batch of ``B`` transitions, one per copy, and counts ``B`` environment steps, so the number of
@@ -103,7 +104,7 @@ class QNetConfig:
     grad_clip_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
     scale_inputs: bool = True  # bounded observation dimensions onto [-1, 1], the others standardised (running)
-    standardise_unbounded: bool = True  # false: with scale_inputs, unbounded dimensions enter unchanged
+    standardise_unbounded: bool = False  # true: unbounded dimensions standardised too (results/qnet_tuning_cartpole)
     head: str = "plain"  # "plain" (one linear output per action) or "dueling" (Wang et al. 2016)
     replay_kind: str = "prioritized"  # "uniform" or "prioritized" (proportional, Schaul et al. 2016)
     priority_exponent: float = 0.6  # alpha: p_i = (|TD error| + priority_offset) ** alpha; 0 gives uniform
@@ -216,8 +217,9 @@ class QNetLearner:
         """The same architecture trained on ``targets`` ``(N, n_actions)`` at ``observations`` by full-batch Adam.
 
         Same head and same input scaling as the learner: bounded dimensions map onto [-1, 1] from
-        the observation space; unbounded ones are standardised with the mean and variance of the
-        ``observations`` being fitted (not the learner's running statistics). Mean squared error,
+        the observation space; unbounded ones enter as they are or, with ``standardise_unbounded``,
+        are standardised with the mean and variance of the ``observations`` being fitted (not the
+        learner's running statistics). Mean squared error,
         ``steps`` steps (None: ``FIT_STEPS``) of step size ``FIT_LEARNING_RATE`` from initial
         weights seeded by ``FIT_SEED``, on one torch thread (the thread count is restored after).
         Depends on the config only, never on the learner's weights, statistics or seed; an upper
