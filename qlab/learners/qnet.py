@@ -103,7 +103,7 @@ class QNetConfig:
     epsilon: ScheduleConfig = field(default_factory=lambda: ScheduleConfig("linear", 1.0, 0.05, 5_000.0))  # env steps
     grad_clip_norm: float = 10.0  # 0 disables gradient-norm clipping
     torch_threads: int = 1
-    scale_inputs: bool = True  # bounded observation dimensions onto [-1, 1], the others standardised (running)
+    scale_inputs: bool = True  # bounded observation dimensions onto [-1, 1] (unbounded ones: standardise_unbounded)
     standardise_unbounded: bool = False  # true: unbounded dimensions standardised too (results/qnet_tuning_cartpole)
     head: str = "plain"  # "plain" (one linear output per action) or "dueling" (Wang et al. 2016)
     replay_kind: str = "prioritized"  # "uniform" or "prioritized" (proportional, Schaul et al. 2016)

@@ -21,7 +21,7 @@ VARIANCE_FLOOR = 1e-8
 
 
 class InputScaler:
-    """Affine map of bounded dimensions onto [-1, 1], running standardisation of the others."""
+    """Affine map of bounded dimensions onto [-1, 1]; running standardisation of the others if ``standardise``."""
 
     def __init__(self, low: np.ndarray, high: np.ndarray, standardise: bool = True):
         low = np.asarray(low, dtype=np.float64).reshape(-1)
