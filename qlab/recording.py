@@ -21,6 +21,7 @@ import io
 import json
 import os
 import tempfile
+import time
 from pathlib import Path
 from typing import Any
 
@@ -92,9 +93,11 @@ class Recorder:
 
     Rows live in memory and are appended to ``metrics.csv`` at each :meth:`commit` (called with
     every checkpoint, the file synced), so the table on disk holds at least the rows of the last
-    checkpoint and a commit costs only its new rows. On resume the table is rewritten atomically
-    with the rows up to the checkpoint's step, and tensorboard purges events after that step
-    (``purge_step = step + 1``: rows at the checkpoint's own step were committed with it).
+    checkpoint and a commit costs only its new rows. Tensorboard events (:mod:`qlab.events`) are
+    written at the same moments, each stamped with the wall time its row was recorded at. On
+    resume the table is rewritten atomically with the rows up to the checkpoint's step, and
+    tensorboard purges events after that step (``purge_step = step + 1``: rows at the
+    checkpoint's own step were committed with it).
     """
 
     def __init__(self, run_dir: Path, resume_step: int = 0, tensorboard: bool = True):
@@ -102,19 +105,18 @@ class Recorder:
         self.rows = read_metrics(self.run_dir, up_to_step=resume_step) if resume_step else []
         atomic_write_text(self.run_dir / METRICS, "step,tag,value\n" + _csv_lines(self.rows))
         self.committed = len(self.rows)
-        self.writer = None
-        if tensorboard:
-            from torch.utils.tensorboard import SummaryWriter
+        self.events = None
+        if tensorboard:  # imported here: reading results needs neither tensorboard nor torch
+            from qlab.events import EventFile
 
-            # events queue in memory and reach the file at each commit (a checkpoint), never one by one
-            self.writer = SummaryWriter(str(self.run_dir / "tb"), purge_step=resume_step + 1 if resume_step else None,
-                                        max_queue=100_000, flush_secs=3600)
+            self.events = EventFile(self.run_dir / "tb", resume_step + 1 if resume_step else None)
 
     def scalar(self, tag: str, value: float, step: int) -> None:
         """Record one scalar at an environment step."""
-        self.rows.append((int(step), tag, float(value)))
-        if self.writer is not None:
-            self.writer.add_scalar(tag, float(value), int(step))
+        row = (int(step), tag, float(value))
+        self.rows.append(row)
+        if self.events is not None:
+            self.events.scalar(tag, row[2], row[0], time.time())
 
     def scalars(self, values: dict[str, float], step: int, prefix: str) -> None:
         """Record several scalars under one tag prefix, e.g. ``eval/``."""
@@ -123,28 +125,44 @@ class Recorder:
 
     def text(self, tag: str, body: str) -> None:
         """Attach text (e.g. the resolved config) to the tensorboard run."""
-        if self.writer is not None:
-            self.writer.add_text(tag, f"```\n{body}\n```", 0)
+        if self.events is not None:
+            from torch.utils.tensorboard.summary import text
+
+            self.events.summary(text(tag, f"```\n{body}\n```"))
 
     def commit(self) -> None:
-        """Append the rows recorded since the last commit to the metrics table, sync it, flush tensorboard."""
+        """Append the rows recorded since the last commit to the metrics table, sync it, write tensorboard's events."""
         with (self.run_dir / METRICS).open("a", encoding="utf-8", newline="") as fh:
             fh.write(_csv_lines(self.rows[self.committed:]))
             fh.flush()
             os.fsync(fh.fileno())
         self.committed = len(self.rows)
-        if self.writer is not None:
-            self.writer.flush()
+        self._flush_tensorboard()
+
+    def _flush_tensorboard(self) -> None:
+        """Write the queued tensorboard events to their file."""
+        if self.events is not None:
+            self.events.flush()
 
     def hparams(self, params: dict[str, Any], final: dict[str, float]) -> None:
-        """Link the run's settings to its final metrics in tensorboard's hparams view."""
-        if self.writer is not None:
+        """Link the run's settings to its final metrics in tensorboard's hparams view (the run ``tb/hparams``)."""
+        if self.events is not None:
+            from torch.utils.tensorboard.summary import hparams
+
+            from qlab.events import EventFile
+
             clean = {k: v if isinstance(v, int | float | str | bool) else str(v) for k, v in params.items()}
-            self.writer.add_hparams(clean, {f"final/{k}": v for k, v in final.items()}, run_name="hparams")
+            metrics = {f"final/{k}": v for k, v in final.items()}
+            entry = EventFile(self.run_dir / "tb" / "hparams")
+            for summary in hparams(clean, metrics):
+                entry.summary(summary)
+            now = time.time()
+            for tag, value in metrics.items():
+                entry.scalar(tag, float(value), 0, now)
+            entry.close()
 
     def close(self) -> None:
-        """Flush and close tensorboard writers."""
-        if self.writer is not None:
-            self.writer.flush()
-            self.writer.close()
-            self.writer = None
+        """Write the queued events and close the tensorboard file."""
+        if self.events is not None:
+            self.events.close()
+            self.events = None

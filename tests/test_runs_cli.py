@@ -156,8 +156,9 @@ KILLER = textwrap.dedent(
     with initialize_config_dir(config_dir=str(CONFIG_DIR), version_base="1.3"):
         cfg = compose(config_name="config", overrides=overrides)
 
-    # After the n_kill-th checkpoint, let 12 more scalars reach the tensorboard file (flushed),
-    # then kill: the resumed run must purge them and record them once.
+    # After the n_kill-th checkpoint, let 12 more scalars reach the tensorboard file (written and
+    # flushed, as a commit or a clean stop writes them), then kill: the resumed run must purge them
+    # and record them once.
     armed, after = [False], [0]
     scalar = Recorder.scalar
 
@@ -166,7 +167,7 @@ KILLER = textwrap.dedent(
         if armed[0]:
             after[0] += 1
             if after[0] == 12:
-                self.writer.flush()
+                self._flush_tensorboard()
                 os.kill(os.getpid(), getattr(signal, sig))
 
     Recorder.scalar = scalar_then_maybe_kill

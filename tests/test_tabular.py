@@ -6,6 +6,8 @@ import numpy as np
 import pytest
 import scipy.stats
 from gymnasium import spaces
+from hypothesis import given
+from hypothesis import strategies as st
 from small_mdp import GAMMA, N_ACTIONS, N_STATES, one_row_rule, random_mdp, state_space
 
 from qlab.checkpoint import load_checkpoint, save_checkpoint
@@ -109,6 +111,14 @@ def test_epsilon_schedule_counts_act_calls():
     greedy = learner.greedy(obs)
     assert late == [greedy[i % N_STATES] for i in range(50)]
     assert early != [greedy[i % N_STATES] for i in range(50)]
+
+
+@given(st.floats(0.0, 1.0), st.floats(0.0, 1.0), st.floats(1e-3, 1e8), st.integers(0, 10**9))
+def test_linear_schedule_of_one_count_equals_numpys_array_result(start, end, horizon, n):
+    # The one-count path (plain floats) must give numpy's numbers bit for bit: act on a batch of one
+    # and the recorded epsilon use it, batches use the array path (IEEE 754 arithmetic in both)
+    schedule = ScheduleConfig("linear", start, end, horizon).build("epsilon")
+    assert schedule(n) == schedule(np.array([n]))[0] == schedule.over(n, 1)
 
 
 def test_state_dict_round_trip_continues_identically(tmp_path):

@@ -117,6 +117,8 @@ def epsilon_greedy(q: np.ndarray, epsilon: np.ndarray | float, rng: np.random.Ge
 def sum_by_key(keys: np.ndarray, values: np.ndarray, counts: np.ndarray) -> tuple[np.ndarray, ...]:
     """The distinct ``keys`` ``(K,)`` and the sums of ``values`` and ``counts`` over each; returned as given
     when the keys are already distinct (each sum taken in the keys' order, as ``np.bincount`` does)."""
+    if keys.size < 2:
+        return keys, values, counts
     order = np.argsort(keys, kind="stable")
     ordered = keys[order]
     first = np.empty(keys.size, dtype=bool)

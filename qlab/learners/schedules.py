@@ -36,8 +36,10 @@ class Schedule:
             require_within("polynomial schedule power", self.power, 0.5, 1.0, open_low=True)
 
     def __call__(self, n: np.ndarray | int) -> np.ndarray | float:
-        if self.kind == "constant" and np.ndim(n) == 0:
-            return self.start
+        if isinstance(n, int | float) and self.kind in ("constant", "linear"):  # one count: plain floats, same numbers
+            if self.kind == "constant":
+                return self.start
+            return self.start + min(max(n / self.horizon, 0.0), 1.0) * (self.end - self.start)
         n = np.asarray(n, dtype=np.float64)
         if self.kind == "constant":
             out = np.full_like(n, self.start)
@@ -51,8 +53,11 @@ class Schedule:
         return float(out) if out.ndim == 0 else out
 
     def over(self, first: int, count: int) -> np.ndarray | float:
-        """The rates at counts ``first, ..., first + count - 1``; one float when the schedule is constant."""
-        return self.start if self.kind == "constant" else self(first + np.arange(count))
+        """The rates at counts ``first, ..., first + count - 1``; one float when the schedule is constant or
+        ``count`` is 1 on a linear schedule."""
+        if self.kind == "constant":
+            return self.start
+        return self(first) if count == 1 and self.kind == "linear" else self(first + np.arange(count))
 
 
 @dataclass

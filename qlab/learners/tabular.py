@@ -69,6 +69,10 @@ class TabularQ(LinearQ):
         coords = np.stack(np.unravel_index(np.arange(grid.n_features), tuple(grid.bins)), axis=1)
         return grid.low + (coords + 0.5) * grid.width
 
+    def q_values(self, obs: np.ndarray) -> np.ndarray:
+        """Q for every action, ``(B, n_actions)``: the table rows of the observations' cells."""
+        return self.weights[self.features.index(obs)]
+
     def learn(self, batch: Transitions) -> dict[str, float]:
         """:meth:`LinearQ.learn` on one-hot cells, computed on the cell indices directly (same numbers)."""
         b = len(batch)

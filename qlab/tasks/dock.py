@@ -228,11 +228,11 @@ class Dock(ControlTask):
         for _ in range(self.substeps):  # explicit Euler sub-steps: m dv/dt = thrust - (c1 + c2 |v|) v, dx/dt = v
             v_new = v + h_per_kg * (thrust_N - (c1 + c2 * np.abs(v)) * v)
             x_new = x + h * v_new
+            if not (any_failed or x_new.max() > self.quay_position_m or x_new.min() < self.channel_end_m):
+                x, v = x_new, v_new  # open water: nothing stops a vessel
+                continue
             at_quay = x_new > self.quay_position_m
             left_channel = x_new < self.channel_end_m
-            if not (any_failed or (at_quay | left_channel).any()):  # open water: nothing stops a vessel
-                x, v = x_new, v_new
-                continue
             strike = at_quay & (v_new > self.contact_speed_m_s)
             x_new[at_quay] = self.quay_position_m
             v_new[at_quay & ~strike] = 0.0
