@@ -25,7 +25,14 @@ from test_markup import Page
 from qlab.compare import figures, stats
 from qlab.compare.exact import restore
 from qlab.compare.report import main
-from qlab.compare.runs import MAX_SETTING_NAME, START_AT_POTENTIAL_ARM, eval_matrix, load_study, setting_folder
+from qlab.compare.runs import (
+    MAX_SETTING_NAME,
+    START_AT_POTENTIAL_ARM,
+    Run,
+    eval_matrix,
+    load_study,
+    setting_folder,
+)
 from qlab.compare.selection import select, swept_keys
 from qlab.config import CONFIG_DIR, register_configs
 from qlab.experiment import run_experiment
@@ -359,6 +366,19 @@ def test_a_setting_added_after_some_runs_is_not_a_swept_key(sweep):
     assert swept_keys(runs) == ["learner.step_size.start"]
     runs[1].flat["learner.step_size_count"] = "visits"  # two values among the runs that have it: swept
     assert swept_keys(runs) == ["learner.step_size.start", "learner.step_size_count"]
+
+
+def test_runs_made_before_a_recorded_setting_existed_carry_the_value_they_computed_with(tmp_path):
+    # standardise_unbounded came in with default true, the earlier behaviour, and later became false:
+    # old runs must not be pooled with new ones as if they had computed the same thing
+    def run(learner: dict) -> Run:
+        return Run("r", tmp_path, OmegaConf.create({"seed": 0, "learner": learner}), "finished", None, {}, {})
+
+    old = run({"kind": "qnet", "scale_inputs": True})
+    new = run({"kind": "qnet", "scale_inputs": True, "standardise_unbounded": False})
+    assert old.flat["learner.standardise_unbounded"] is True
+    assert "learner.standardise_unbounded" not in run({"kind": "tabular"}).flat  # a setting of the Q-network only
+    assert swept_keys([old, new]) == ["learner.standardise_unbounded"]
 
 
 def test_failures_score_the_worst_return_of_their_task_setting(delay, tmp_path):

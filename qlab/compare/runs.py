@@ -41,6 +41,12 @@ from qlab.runspec import is_storage_key, load_config, run_digest
 UNFINISHED = ("crashed", "damaged")
 #: evaluation names written by older versions -> today's (``eval/success_rate`` became ``eval/success``)
 LEGACY_NAMES = {"success_rate": "success"}
+#: settings added after runs had been made: key -> (a key every run the setting applies to has, the value
+#: runs made before the setting existed computed with); filled in where a run's config lacks the key
+ADDED_SETTINGS: dict[str, tuple[str, Any]] = {
+    # before it existed, the Q-network standardised unbounded inputs whenever it scaled inputs
+    "learner.standardise_unbounded": ("learner.scale_inputs", True),
+}
 #: the scores a failed run loses from its failure step on (see the module docstring)
 SCORES = ("success", "discounted_return")
 #: the failure-score rule in one sentence, as the report states it
@@ -102,6 +108,9 @@ class Run:
 
     def __post_init__(self) -> None:
         self.flat = flatten(OmegaConf.to_container(self.config, resolve=True))
+        for key, (marker, earlier) in ADDED_SETTINGS.items():
+            if marker in self.flat and key not in self.flat:
+                self.flat[key] = earlier
 
     @property
     def failed(self) -> bool:

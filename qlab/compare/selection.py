@@ -38,9 +38,10 @@ class Selection:
 def swept_keys(runs: list[Run]) -> list[str]:
     """Hyperparameter keys whose values differ between ``runs`` (never ``task.*``: see :meth:`Run.setting`).
 
-    A key missing from some runs' configs is a setting added after they ran; qlab adds settings with
-    defaults that keep the earlier behaviour, so a missing key differs only where the runs that have
-    it disagree among themselves.
+    A key missing from some runs' configs is a setting added after they ran. Where the value those
+    runs computed with is recorded (:data:`qlab.compare.runs.ADDED_SETTINGS`) the run carries it;
+    otherwise the setting's default is taken to keep the earlier behaviour, so a missing key differs
+    only where the runs that have it disagree among themselves.
     """
     settings = [r.setting() for r in runs]
     keys = sorted(set().union(*settings)) if settings else []
