@@ -255,6 +255,16 @@ def test_diverged_and_crashed_runs_count_as_failures(study, tmp_path):
     assert curve[2:].tolist() == [0.0, 0.0]
 
 
+def test_finished_runs_without_a_checkpoint_are_not_called_failed(study, tmp_path):
+    # a clone of a committed study has no checkpoints (they are never committed): say so, not "failed"
+    copied = Path(shutil.copytree(study, tmp_path / "copied"))
+    shutil.rmtree(copied / "shaping=none,seed=0" / "checkpoint")
+    assert main([str(copied), "--grid", "21"]) == 0
+    markdown = (copied / "report.md").read_text()
+    assert "1 finished run(s) without a checkpoint (its learner cannot be restored) left out of the errors" in markdown
+    assert "failed run(s)" not in markdown
+
+
 def test_sweep_reports_each_arm_on_seeds_it_was_not_chosen_on(sweep):
     assert main([str(sweep), "--no-diagnostics"]) == 0
     markdown = (sweep / "report.md").read_text()

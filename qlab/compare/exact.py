@@ -111,9 +111,13 @@ def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[s
         for arm in sel.arms:
             runs = [r for r in sel.runs[arm] if has_grid_reference(r)]
             shown_kind, shown_arm = md_literal(learner_kind), md_literal(arm)
-            if len(_usable(runs)) < len(runs):
-                notes.append(f"{shown_kind} / {shown_arm}: {len(runs) - len(_usable(runs))} failed run(s) left out "
-                             "of the errors.")
+            failed = sum(r.failed for r in runs)
+            unsaved = sum(not r.failed and not has_checkpoint(r.path / CHECKPOINT) for r in runs)
+            if failed:
+                notes.append(f"{shown_kind} / {shown_arm}: {failed} failed run(s) left out of the errors.")
+            if unsaved:
+                notes.append(f"{shown_kind} / {shown_arm}: {unsaved} finished run(s) without a checkpoint (its "
+                             "learner cannot be restored) left out of the errors.")
             restored = _restored(runs, f"{shown_kind} / {shown_arm}", notes)
             if not restored:
                 continue
