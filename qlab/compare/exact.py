@@ -112,7 +112,7 @@ def dock_lines(selections: dict[str, Selection], grid: int, out: Path) -> list[s
             runs = [r for r in sel.runs[arm] if has_grid_reference(r)]
             shown_kind, shown_arm = md_literal(learner_kind), md_literal(arm)
             failed = sum(r.failed for r in runs)
-            unsaved = sum(not r.failed and not has_checkpoint(r.path / CHECKPOINT) for r in runs)
+            unsaved = len(runs) - failed - len(_usable(runs))  # finished, but no checkpoint to restore
             if failed:
                 notes.append(f"{shown_kind} / {shown_arm}: {failed} failed run(s) left out of the errors.")
             if unsaved:
